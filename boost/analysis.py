@@ -1,0 +1,254 @@
+"""The analysis stage: a run folder in, unbiased populations, ΔG and PMFs out.
+
+Reads only the run folder (its protocol copy and ledger), so a run can be analysed on
+another machine, later, while it is still going, with other settings. Steps: keep
+production cycles; per condition, discard equilibration and subsample by statistical
+inefficiency; MBAR over all conditions; reweight to the unbiased condition at the target
+temperature.
+"""
+
+import math
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+
+from .conditions import compute_unbiased_reduced_potential
+from .diagnostics import summarise_swaps, warn_poor_overlap
+from .exceptions import AnalysisError, ConvergenceWarning
+from .protocol import parse_protocol
+from .reweight import Reweighting, decorrelate
+from pymbar import timeseries  # imported quietly by .reweight first
+from .store import PROTOCOL, read_ledger
+from .units import energy_in
+
+#: Fewest samples per condition (after subsampling) the analysis accepts.
+MIN_SAMPLES = 5
+DEFAULT_BIN_COUNT = {"periodic": 36, "open": 40}
+
+
+@dataclass(frozen=True)
+class ProfileResult:
+    """A PMF, in ``energy_unit``; zero at its minimum. centres in nm or degrees."""
+
+    coordinates: tuple
+    centres: tuple          # one array per coordinate (nm, or degrees for angles)
+    f: np.ndarray
+    df: np.ndarray
+    counts: np.ndarray
+
+
+@dataclass(frozen=True)
+class BasinResult:
+    names: tuple
+    populations: np.ndarray
+    d_populations: np.ndarray
+    Delta_g: np.ndarray      # [i, j] = G_j - G_i, in energy_unit
+    d_Delta_g: np.ndarray
+
+
+@dataclass(frozen=True)
+class Analysis:
+    """Everything ``boost analyze`` reports. Energies in ``energy_unit`` at ``temperature``."""
+
+    folder: str
+    temperature: float
+    energy_unit: str
+    n_cycles: int
+    samples_k: np.ndarray     # uncorrelated samples used per condition
+    t0_k: np.ndarray          # equilibration discarded per condition (production cycles)
+    g_k: np.ndarray           # statistical inefficiency per condition (cycles)
+    f_k: np.ndarray           # condition free energies relative to condition 0, in kT
+    df_k: np.ndarray          # in kT
+    overlap: np.ndarray
+    poor_pairs: tuple
+    profiles: tuple
+    basins: BasinResult | None
+    swaps: object             # diagnostics.SwapSummary or None
+    condition_labels: tuple
+    window_values: tuple      # per condition: umbrella coordinate values of its production
+                              # samples, shape (n, n_axes), nm or degrees
+    umbrella_coordinates: tuple
+    angle_coordinates: frozenset   # coordinates reported in degrees
+    walker_traces: np.ndarray      # condition_rt over production cycles
+
+
+def load_run(folder):
+    """The protocol copy and ledger of a run folder."""
+    from pathlib import Path
+
+    data = read_ledger(folder)
+    path = Path(folder) / PROTOCOL
+    protocol = parse_protocol(path.read_text(encoding="utf-8"), path)
+    return protocol, data
+
+
+def analyse_run(folder, *, temperature=None, energy_unit=None):
+    """Analyse a run folder; see :class:`Analysis`. ``temperature`` in K."""
+    protocol, data = load_run(folder)
+    temperature = protocol.temperature if temperature is None else temperature
+    ladder = protocol.temperatures
+    if not min(ladder) - 1e-9 <= temperature <= max(ladder) + 1e-9:
+        raise AnalysisError(f"{folder}: target temperature {temperature:g} K is outside the ladder "
+                            f"({min(ladder):g} K to {max(ladder):g} K); MBAR cannot extrapolate.")
+    unit = energy_unit or protocol.analysis.energy_unit
+    samples = select_samples(data, protocol, folder)
+    u_kn, N_k, picks = samples["u_kn"], samples["N_k"], samples["picks"]
+    mbar = Reweighting(u_kn, N_k)
+    u_n = compute_unbiased_reduced_potential(
+        temperature, _gather(data.potential_rt, picks),
+        volume_n=_gather(data.volume_rt, picks), pressure=protocol.pressure)
+    values_nc = np.stack([_gather(data.values_rtc[:, :, c], picks) for c in range(len(data.coordinate_names))],
+                         axis=1) if data.coordinate_names else np.zeros((len(u_n), 0))
+    labels = condition_labels(data, protocol)
+    ladder_shape = (len(ladder), *[len(a.centres) for a in protocol.umbrella])
+    poor = warn_poor_overlap(mbar.overlap, ladder_shape, lambda k: labels[k]) if len(N_k) > 1 else []
+    scale = energy_in(1.0, unit, temperature)
+    production = set(data.cycle_t[data.production_t].tolist())
+    return Analysis(
+        folder=str(folder), temperature=temperature, energy_unit=unit, n_cycles=len(data.cycle_t),
+        samples_k=N_k, t0_k=samples["t0_k"], g_k=samples["g_k"],
+        f_k=mbar.f_k, df_k=mbar.df_k, overlap=mbar.overlap,
+        poor_pairs=tuple(poor),
+        profiles=tuple(_profiles(mbar, u_n, values_nc, data, protocol, scale)),
+        basins=_basins(mbar, u_n, values_nc, data, protocol, scale),
+        swaps=summarise_swaps(data.swaps, data.condition_rt[:, data.production_t], len(data.conditions),
+                              production) if protocol.exchange else None,
+        condition_labels=labels, window_values=_window_values(data, protocol),
+        umbrella_coordinates=tuple(a.coordinate for a in protocol.umbrella),
+        angle_coordinates=frozenset(n for n, u in data.metadata["units"].items() if u == "rad"),
+        walker_traces=data.condition_rt[:, data.production_t])
+
+
+def _window_values(data, protocol):
+    columns = [data.coordinate_names.index(a.coordinate) for a in protocol.umbrella]
+    if not columns:
+        return ()
+    angular = [data.metadata["units"][a.coordinate] == "rad" for a in protocol.umbrella]
+    production = data.production_t
+    out = []
+    for k in range(len(data.conditions)):
+        held = (data.condition_rt == k) & production[None, :]
+        values = data.values_rtc[held][:, columns]
+        out.append(np.where(angular, np.degrees(values), values))
+    return tuple(out)
+
+
+def condition_labels(data, protocol):
+    labels = []
+    for condition in data.conditions:
+        parts = [f"{condition.temperature:.1f} K"] if len(protocol.temperatures) > 1 else []
+        for axis, centre in zip(protocol.umbrella, condition.centres):
+            unit = data.metadata["units"][axis.coordinate]
+            shown = f"{math.degrees(centre):.1f} deg" if unit == "rad" else f"{centre:.4g} nm"
+            parts.append(f"{axis.coordinate} = {shown}")
+        labels.append(f"condition {condition.index} ({', '.join(parts) or 'unbiased'})")
+    return tuple(labels)
+
+
+def _gather(array_rt, picks):
+    return np.concatenate([array_rt[walkers, cycles] for walkers, cycles in picks])
+
+
+def _decorrelation_series(data, k, walkers, cycles, protocol):
+    """Observables whose correlation time bounds the sample spacing in condition k."""
+    series = [data.u_krt[k, walkers, cycles]]
+    watched = {a.coordinate for a in protocol.umbrella} | {c for b in protocol.basins.values() for c in b}
+    for c, name in enumerate(data.coordinate_names):
+        if name in watched:
+            values = data.values_rtc[walkers, cycles, c]
+            series += [np.cos(values), np.sin(values)] if data.metadata["periodic"][c] else [values]
+    return series
+
+
+def select_samples(data, protocol, folder):
+    """Production samples per condition, equilibration removed, subsampled; u_kn and N_k."""
+    production = np.flatnonzero(data.production_t)
+    if production.size == 0:
+        raise AnalysisError(f"{folder}: holds no production cycle yet.")
+    picks, t0_k, g_k = [], [], []
+    for k in range(len(data.conditions)):
+        walker_t = np.argmax(data.condition_rt[:, production] == k, axis=0)
+        series = _decorrelation_series(data, k, walker_t, production, protocol)
+        # equilibration from the condition's own reduced potential (Chodera 2016); the
+        # spacing from the slowest watched observable after it
+        t0 = decorrelate(series[0]).t0
+        g = max([1.0] + [float(timeseries.statistical_inefficiency(s[t0:])) for s in series if np.ptp(s[t0:]) > 0])
+        keep = t0 + np.unique(np.floor(np.arange(0, production.size - t0, g) + 0.5).astype(int))
+        keep = keep[keep < production.size]
+        if keep.size < MIN_SAMPLES:
+            raise AnalysisError(f"{folder}: condition {k} has only {keep.size} uncorrelated samples "
+                                f"(g = {g:.1f} cycles); run longer before analysing.")
+        picks.append((walker_t[keep], production[keep]))
+        t0_k.append(t0)
+        g_k.append(g)
+    u_kn = np.concatenate([data.u_krt[:, walkers, cycles] for walkers, cycles in picks], axis=1)
+    N_k = np.array([len(w) for w, _ in picks])
+    return {"u_kn": u_kn, "N_k": N_k, "picks": picks, "t0_k": np.array(t0_k), "g_k": np.array(g_k)}
+
+
+def _edges(protocol, data, name, values):
+    for bins in protocol.analysis.bins:
+        if bins.coordinate == name:
+            return np.array(bins.edges)
+    c = data.coordinate_names.index(name)
+    if data.metadata["periodic"][c]:
+        return np.linspace(-math.pi, math.pi, DEFAULT_BIN_COUNT["periodic"] + 1)
+    low, high = float(np.min(values)), float(np.max(values))
+    return np.linspace(low, high + 1e-9 * max(1.0, abs(high)), DEFAULT_BIN_COUNT["open"] + 1)
+
+
+def _profiles(mbar, u_n, values_nc, data, protocol, scale):
+    names = [a.coordinate for a in protocol.umbrella]
+    names += [b.coordinate for b in protocol.analysis.bins if b.coordinate not in names]
+    grids = [(name,) for name in names]
+    if len(protocol.umbrella) == 2:
+        grids.append(tuple(a.coordinate for a in protocol.umbrella))
+    profiles = []
+    for grid in grids:
+        columns = [data.coordinate_names.index(name) for name in grid]
+        values = values_nc[:, columns]
+        edges = [_edges(protocol, data, name, values[:, i]) for i, name in enumerate(grid)]
+        profile = mbar.compute_pmf(u_n, values, edges)
+        centres = tuple(np.degrees(c) if data.metadata["units"][name] == "rad" else c
+                        for c, name in zip(profile.centres, grid))
+        profiles.append(ProfileResult(grid, centres, profile.f * scale, profile.df * scale, profile.counts))
+    return profiles
+
+
+def basin_masks(protocol, coordinate_names, periodic, values_nc):
+    """Which samples lie in each basin (intervals per coordinate; dihedral intervals may wrap)."""
+    masks = {}
+    for name, intervals in protocol.basins.items():
+        mask = np.ones(len(values_nc), dtype=bool)
+        for coordinate, (lower, upper) in intervals.items():
+            c = coordinate_names.index(coordinate)
+            x = values_nc[:, c]
+            if periodic[c] and lower > upper:
+                mask &= (x >= lower) | (x < upper)
+            else:
+                mask &= (x >= lower) & (x < upper)
+        masks[name] = mask
+    return masks
+
+
+def _basins(mbar, u_n, values_nc, data, protocol, scale):
+    if not protocol.basins:
+        return None
+    masks = basin_masks(protocol, list(data.coordinate_names), data.metadata["periodic"], values_nc)
+    names = list(masks)
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            if np.any(masks[a] & masks[b]):
+                raise AnalysisError(f"{PROTOCOL}: basins.{a} and basins.{b} overlap; basins must be disjoint.")
+    empty = [name for name in names if not masks[name].any()]
+    for name in empty:
+        warnings.warn(f"basin {name} holds no sample, so its population cannot be estimated; "
+                      "sample it (more windows, longer runs) or check its interval.", ConvergenceWarning,
+                      stacklevel=2)
+        del masks[name]
+    if not masks:
+        raise AnalysisError(f"{PROTOCOL}: no basin holds a sample; check the basin intervals.")
+    result = mbar.compute_basins(u_n, masks)
+    return BasinResult(result.names, result.populations, result.d_populations,
+                       result.Delta_g * scale, result.d_Delta_g * scale)

@@ -1,0 +1,137 @@
+"""The ``boost`` command: thin wiring from the command line to the pipeline."""
+
+import logging
+import sys
+from dataclasses import replace
+from pathlib import Path
+
+import click
+
+from .exceptions import BoostError
+
+
+def _fail(err, debug):
+    if debug:
+        raise err
+    click.echo(f"boost: {err}", err=True)
+    sys.exit(2)
+
+
+class _Group(click.Group):
+    """Turns every BoostError into one line on stderr and exit code 2."""
+
+    def invoke(self, ctx):
+        debug = "--debug" in sys.argv
+        try:
+            return super().invoke(ctx)
+        except BoostError as err:
+            _fail(err, debug)
+        except KeyboardInterrupt:
+            click.echo("boost: interrupted; the run folder holds every complete cycle.", err=True)
+            sys.exit(130)
+        except (click.exceptions.Exit, click.ClickException, click.Abort):
+            raise
+        except Exception as err:  # a bug in boost or a library: still one line unless --debug
+            if debug:
+                raise
+            click.echo(f"boost: internal error: {type(err).__name__}: {err} (rerun with --debug for details)",
+                       err=True)
+            sys.exit(1)
+
+
+@click.group(cls=_Group)
+@click.option("--debug", is_flag=True, help="Show tracebacks for errors.")
+@click.version_option(package_name="boost")
+def main(debug):
+    """Enhanced sampling on OpenMM, reweighted to equilibrium populations, ΔG and PMFs."""
+    logger = logging.getLogger("boost")
+    if not logger.handlers:
+        handler = logging.StreamHandler()
+        handler.setFormatter(logging.Formatter("boost: %(message)s"))
+        logger.addHandler(handler)
+    logger.setLevel(logging.DEBUG if debug else logging.INFO)
+    logger.propagate = False
+
+
+def _platform_override(protocol, name, threads):
+    if name is None and threads is None:
+        return None
+    settings = protocol.platform
+    return replace(settings, name=name or settings.name, threads=threads or settings.threads)
+
+
+@main.command()
+@click.argument("protocol_file", type=click.Path(dir_okay=False, path_type=Path))
+def check(protocol_file):
+    """Validate PROTOCOL_FILE and its system without running MD; print what would run."""
+    from .protocol import load_protocol
+    from .scheduler import make_plan
+    from .summary import describe_plan
+
+    protocol = load_protocol(protocol_file)
+    plan = make_plan(protocol, probe=False)
+    click.echo(describe_plan(plan))
+    click.echo("protocol is valid.")
+
+
+@main.command()
+@click.argument("protocol_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("-o", "--folder", type=click.Path(file_okay=False, path_type=Path),
+              help="Run folder (default: runs/<protocol name>).")
+@click.option("--platform", "platform_name", type=click.Choice(["auto", "Reference", "CPU"]),
+              help="OpenMM platform, overriding the protocol.")
+@click.option("--threads", type=click.IntRange(min=1), help="CPU platform threads.")
+@click.option("--quiet", is_flag=True, help="No progress bar.")
+def run(protocol_file, folder, platform_name, threads, quiet):
+    """Run PROTOCOL_FILE into a run folder."""
+    from .protocol import load_protocol
+    from .scheduler import make_plan, Scheduler
+    from .summary import describe_plan
+
+    protocol = load_protocol(protocol_file)
+    folder = folder or Path("runs") / protocol_file.stem
+    plan = make_plan(protocol, platform=_platform_override(protocol, platform_name, threads))
+    click.echo(describe_plan(plan))
+    Scheduler(plan, folder, progress=not quiet).run()
+    click.echo(f"run complete: {folder}")
+
+
+@main.command()
+def systems():
+    """List the bundled systems a protocol can name."""
+    from .systems import list_bundled_systems
+
+    for name, title, _ in list_bundled_systems():
+        click.echo(f"{name:24s} {title}")
+
+
+@main.command()
+@click.argument("run_folder", type=click.Path(file_okay=False, path_type=Path))
+@click.option("--temperature", help="Target temperature with its unit, e.g. '320 K' (default: the protocol's).")
+@click.option("--unit", "energy_unit", type=click.Choice(["kJ/mol", "kcal/mol", "kT"]),
+              help="Energy unit of the tables (default: the protocol's analysis.energy_unit).")
+@click.option("--output", type=click.Path(file_okay=False, path_type=Path),
+              help="Folder for tables and plots (default: RUN_FOLDER/analysis).")
+def analyze(run_folder, temperature, energy_unit, output):
+    """Reweight RUN_FOLDER with MBAR: basin populations, ΔG, PMFs, diagnostics."""
+    import warnings
+
+    from .analysis import analyse_run
+    from .exceptions import BoostWarning, RunFolderError
+    from .report import format_summary, write_report
+    from .units import parse_quantity
+
+    if not run_folder.is_dir():
+        raise RunFolderError(f"{run_folder}: no such run folder.")
+    target = None
+    if temperature is not None:
+        target = parse_quantity(temperature, "temperature", place="--temperature")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", BoostWarning)
+        analysis = analyse_run(run_folder, temperature=target, energy_unit=energy_unit)
+    for warning in caught:
+        if issubclass(warning.category, BoostWarning):
+            logging.getLogger("boost").warning("warning: %s", warning.message)
+    out = write_report(analysis, output)
+    click.echo(format_summary(analysis))
+    click.echo(f"tables and plots: {out}")

@@ -1,0 +1,202 @@
+"""OpenMM contexts, integrators and platforms: one walker, one context, for the whole run.
+
+The umbrella forces live in their own force group (:data:`BIAS_GROUP`), so the energy a
+walker reports excludes them: the reduced potential of every condition is then computed
+from that energy and the coordinate values (boost.conditions), with no re-evaluation.
+"""
+
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import openmm
+from openmm import unit
+
+from .bias import build_umbrella_force, build_wall_force, centre_parameter, spring_parameter
+from .exceptions import ProtocolError, SimulationError
+
+BIAS_GROUP = 31
+PHYSICAL_GROUPS = set(range(31))
+_MAX_SEED = 2**30
+
+
+@dataclass(frozen=True)
+class PlatformChoice:
+    """The OpenMM platform walkers run on, and how it was chosen."""
+
+    name: str
+    properties: dict
+    probe: tuple = ()      # ((setting, steps per second), ...) when chosen by measuring
+
+
+def derive_seeds(seed, n_walkers):
+    """Integrator seeds (one per walker, never 0, which OpenMM reads as 'random') and a swap seed."""
+    sequence = np.random.SeedSequence(seed)
+    values = sequence.generate_state(n_walkers + 1, dtype=np.uint32) % (_MAX_SEED - 1) + 1
+    return [int(v) for v in values[:n_walkers]], int(values[n_walkers])
+
+
+def prepare_system(built, protocol, coordinates):
+    """A copy of the built System with the walls, the umbrella forces and a barostat added.
+
+    Returns
+    -------
+    system : openmm.System
+    umbrella_names : tuple of str, the coordinates with an umbrella, in protocol order
+    """
+    system = openmm.XmlSerializer.clone(built.system)
+    for force in system.getForces():
+        if force.getForceGroup() == BIAS_GROUP:
+            raise ProtocolError(f"{protocol.path}: system uses force group {BIAS_GROUP}, which boost "
+                                "reserves for umbrella forces.")
+    for wall in protocol.walls:
+        system.addForce(build_wall_force(coordinates[wall.coordinate], system, lower=wall.lower,
+                                         upper=wall.upper, spring=wall.spring))
+    for axis in protocol.umbrella:
+        force = build_umbrella_force(coordinates[axis.coordinate], system,
+                                     centre=axis.centres[0], spring=axis.springs[0])
+        force.setForceGroup(BIAS_GROUP)
+        system.addForce(force)
+    if protocol.pressure is not None:
+        if not system.usesPeriodicBoundaryConditions():
+            raise ProtocolError(f"{protocol.path}: pressure needs a periodic system (a water box).")
+        system.addForce(openmm.MonteCarloBarostat(protocol.pressure * unit.bar,
+                                                  protocol.temperature * unit.kelvin))
+    return system, tuple(axis.coordinate for axis in protocol.umbrella)
+
+
+def platform_properties(name, settings):
+    properties = {}
+    if name == "CPU":
+        if settings.threads:
+            properties["Threads"] = str(settings.threads)
+        if settings.deterministic:
+            properties["DeterministicForces"] = "true"
+    return properties
+
+
+def choose_platform(settings, system, positions, *, timestep, seconds=0.3):
+    """Pick the platform: as the protocol says, or (``auto``) the fastest in a short probe."""
+    if settings.name != "auto":
+        return PlatformChoice(settings.name, platform_properties(settings.name, settings))
+    probe = []
+    for name in ("Reference", "CPU"):
+        properties = platform_properties(name, settings)
+        probe.append((name, _measure_speed(system, positions, name, properties, timestep, seconds)))
+    best = max(probe, key=lambda item: item[1])[0]
+    return PlatformChoice(best, platform_properties(best, settings), tuple(probe))
+
+
+def _measure_speed(system, positions, name, properties, timestep, seconds):
+    integrator = openmm.LangevinMiddleIntegrator(300 * unit.kelvin, 1 / unit.picosecond,
+                                                 timestep * unit.picosecond)
+    integrator.setRandomNumberSeed(1)
+    context = openmm.Context(system, integrator, openmm.Platform.getPlatformByName(name), properties)
+    context.setPositions(positions)
+    integrator.step(10)
+    steps, start = 0, time.perf_counter()
+    while time.perf_counter() - start < seconds:
+        integrator.step(20)
+        steps += 20
+    rate = steps / (time.perf_counter() - start)
+    del context, integrator
+    return rate
+
+
+@dataclass(frozen=True)
+class Observation:
+    """What a walker reports after propagating: energies without umbrellas."""
+
+    potential: float            # kJ/mol, walls included, umbrellas excluded
+    positions: np.ndarray       # (n_atoms, 3) nm
+    box_vectors: np.ndarray | None  # (3, 3) nm
+    volume: float | None        # nm³
+
+
+class Walker:
+    """One replica: an OpenMM context that lives for the whole run.
+
+    Parameters
+    ----------
+    index : int
+    system : openmm.System, from :func:`prepare_system`
+    umbrella_names : tuple of str
+    positions : ndarray, shape (n_atoms, 3), in nm
+    box_vectors : ndarray, shape (3, 3), in nm, or None
+    condition : boost.conditions.Condition
+    timestep : float, ps
+    friction : float, 1/ps
+    platform : PlatformChoice
+    seed : int, positive
+    """
+
+    def __init__(self, index, system, umbrella_names, positions, box_vectors, condition, *,
+                 timestep, friction, platform, seed):
+        self.index = index
+        self.umbrella_names = umbrella_names
+        self.uses_pbc = system.usesPeriodicBoundaryConditions()
+        self.has_barostat = any(isinstance(f, openmm.MonteCarloBarostat) for f in system.getForces())
+        self.integrator = openmm.LangevinMiddleIntegrator(
+            condition.temperature * unit.kelvin, friction / unit.picosecond, timestep * unit.picosecond)
+        self.integrator.setRandomNumberSeed(seed)
+        self.seed = seed
+        self.context = openmm.Context(system, self.integrator,
+                                      openmm.Platform.getPlatformByName(platform.name),
+                                      platform.properties)
+        if box_vectors is not None:
+            self.context.setPeriodicBoxVectors(*[openmm.Vec3(*row) for row in box_vectors])
+        self.context.setPositions(positions)
+        self.condition = None
+        self.apply(condition)
+
+    def apply(self, condition):
+        """Move this walker to ``condition``: umbrella parameters and temperature.
+
+        On a temperature change velocities are rescaled by sqrt(T_new/T_old) so the walker
+        carries on in equilibrium at the new temperature (common practice).
+        """
+        for name, centre, spring in zip(self.umbrella_names, condition.centres, condition.springs):
+            self.context.setParameter(centre_parameter(name), centre)
+            self.context.setParameter(spring_parameter(name), spring)
+        old = self.condition
+        if old is not None and old.temperature != condition.temperature:
+            velocities = self.context.getState(getVelocities=True).getVelocities(asNumpy=True)
+            scale = np.sqrt(condition.temperature / old.temperature)
+            self.context.setVelocities(velocities * scale)
+        self.integrator.setTemperature(condition.temperature * unit.kelvin)
+        if self.has_barostat:
+            self.context.setParameter(openmm.MonteCarloBarostat.Temperature(), condition.temperature)
+        self.condition = condition
+
+    def minimise(self, *, tolerance=10.0, max_iterations=2000):
+        """Local energy minimisation in the current condition (tolerance in kJ/mol/nm)."""
+        openmm.LocalEnergyMinimizer.minimize(self.context, tolerance, max_iterations)
+
+    def draw_velocities(self, seed):
+        self.context.setVelocitiesToTemperature(self.condition.temperature * unit.kelvin, seed)
+
+    def step(self, n_steps):
+        try:
+            self.integrator.step(n_steps)
+        except openmm.OpenMMException as err:
+            raise SimulationError(f"walker {self.index} (condition {self.condition.index}) failed in "
+                                  f"OpenMM: {str(err).strip()}") from None
+
+    def observe(self):
+        state = self.context.getState(getEnergy=True, getPositions=True, groups=PHYSICAL_GROUPS)
+        positions = state.getPositions(asNumpy=True).value_in_unit(unit.nanometer)
+        box = volume = None
+        if self.uses_pbc:
+            box = state.getPeriodicBoxVectors(asNumpy=True).value_in_unit(unit.nanometer)
+            volume = float(np.linalg.det(box))
+        potential = state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole)
+        return Observation(potential, np.asarray(positions), box, volume)
+
+    def checkpoint(self):
+        """OpenMM checkpoint bytes (positions, velocities, box, parameters, RNG states)."""
+        return self.context.createCheckpoint()
+
+    def restore(self, data, condition):
+        self.context.loadCheckpoint(data)
+        self.condition = None
+        self.apply(condition)

@@ -1,0 +1,47 @@
+"""The BoostError tree and boost's own warning categories.
+
+Every error also subclasses a built-in type so that callers who do not know boost can
+still catch it. The command line prints a BoostError as one line and exits with code 2.
+"""
+
+
+class BoostError(Exception):
+    """Base of every error boost raises on purpose."""
+
+
+class ProtocolError(BoostError, ValueError):
+    """A protocol or system spec is malformed: names the file, the key path, what was expected."""
+
+
+class InputError(BoostError, OSError):
+    """A file that boost must read is missing, unreadable or not what it claims to be."""
+
+
+class RunFolderError(BoostError, RuntimeError):
+    """A run folder is missing, belongs to another protocol, is locked or is damaged."""
+
+
+class SimulationError(BoostError, RuntimeError):
+    """A simulation failed: NaN energies, exploding walkers, OpenMM errors."""
+
+
+class AnalysisError(BoostError, ValueError):
+    """The data in a run folder cannot support the analysis asked for."""
+
+
+class BoostWarning(UserWarning):
+    """Base of boost's soft problems; they go through logging and warnings."""
+
+
+class PoorOverlapWarning(BoostWarning):
+    """Neighbouring conditions share too little phase space for reliable reweighting."""
+
+
+class ConvergenceWarning(BoostWarning):
+    """A series is too short or too correlated for the estimate to be trusted."""
+
+
+def where(file, key_path):
+    """Format the place an input problem is found: ``protocol.yaml: run.timestep``."""
+    name = str(file) if file is not None else "<input>"
+    return f"{name}: {key_path}" if key_path else name

@@ -1,0 +1,512 @@
+"""Protocol files: YAML -> validated, frozen protocol objects.
+
+A protocol fully determines a run: the system, the coordinates, the conditions (the
+temperature ladder times the umbrella windows), how long to run, what to analyse and the
+seed. Every input check happens here, so later stages trust what they are given; the only
+checks left for later are those that need the built system (atom selections, see
+:func:`resolve_coordinates`).
+
+Internal units: nm, ps, K, kJ/mol, rad, bar.
+"""
+
+import hashlib
+import math
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .exceptions import ProtocolError
+from .spec import Node, load_yaml, parse_yaml, read_text
+
+SCHEMA_VERSION = 1
+_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
+_RESERVED = {"cycle", "walker", "condition", "potential", "volume", "reduced", "time", "production"}
+_POINT_COUNT = {"distance": 2, "angle": 3, "dihedral": 4, "position": 1}
+_AXES = {"x": 0, "y": 1, "z": 2}
+TOP_KEYS = ("protocol", "title", "system", "seed", "temperature", "timestep", "friction",
+            "pressure", "platform", "coordinates", "walls", "umbrella", "temperatures",
+            "exchange", "run", "basins", "analysis")
+
+
+@dataclass(frozen=True)
+class PointSpec:
+    """One point of a coordinate: an atom selection, or the mass-weighted centre of one."""
+
+    atoms: object          # mdtraj selection text, an int index, or a tuple of ints
+    centre: bool           # True: centre of all selected atoms; False: exactly one atom
+    place: str             # file: key.path, for errors found when resolving
+
+
+@dataclass(frozen=True)
+class CoordinateSpec:
+    """A coordinate as written in the protocol, before atoms are resolved."""
+
+    name: str
+    kind: str                                    # distance | angle | dihedral | position | combination
+    points: tuple = ()                           # tuple[PointSpec, ...]
+    axis: int | None = None
+    terms: tuple = ()                            # tuple[(coefficient, name), ...] for combination
+    unit: str = "nm"                             # 'nm' or 'rad'
+
+    @property
+    def periodic(self):
+        return self.kind == "dihedral"
+
+    @property
+    def value_dimension(self):
+        return "angle" if self.unit == "rad" else "length"
+
+    @property
+    def spring_dimension(self):
+        return "spring_angle" if self.unit == "rad" else "spring_length"
+
+
+@dataclass(frozen=True)
+class Wall:
+    """A flat-bottom wall on a coordinate, present in every condition (part of the ensemble)."""
+
+    coordinate: str
+    lower: float | None
+    upper: float | None
+    spring: float
+
+
+@dataclass(frozen=True)
+class UmbrellaAxis:
+    """Umbrella windows along one coordinate: one centre and spring per window."""
+
+    coordinate: str
+    centres: tuple
+    springs: tuple
+
+
+@dataclass(frozen=True)
+class ExchangeSettings:
+    scheme: str            # 'neighbours' or 'all_pairs'
+    attempts: int          # swap attempts per cycle
+
+
+@dataclass(frozen=True)
+class PlatformSettings:
+    name: str              # 'auto', 'Reference' or 'CPU'
+    threads: int | None
+    deterministic: bool
+
+
+@dataclass(frozen=True)
+class RunSettings:
+    steps_per_cycle: int
+    equilibration_cycles: int
+    production_cycles: int
+    frame_every: int       # cycles between frames; 0 = no frames
+    checkpoint_every: int  # cycles between checkpoints
+    minimise: bool
+
+    @property
+    def n_cycles(self):
+        return self.equilibration_cycles + self.production_cycles
+
+
+@dataclass(frozen=True)
+class Bins:
+    coordinate: str
+    edges: tuple           # bin edges in nm or rad
+
+
+@dataclass(frozen=True)
+class AnalysisSettings:
+    bins: tuple            # tuple[Bins, ...]; empty: chosen from the data
+    energy_unit: str       # 'kJ/mol', 'kcal/mol' or 'kT'
+
+
+@dataclass(frozen=True)
+class Protocol:
+    """A validated protocol. Quantities in nm, ps, K, kJ/mol, rad, bar."""
+
+    path: Path
+    text: str
+    sha256: str
+    title: str
+    seed: int
+    temperature: float
+    timestep: float
+    friction: float
+    pressure: float | None
+    system: Node
+    coordinates: dict
+    walls: tuple
+    umbrella: tuple
+    temperatures: tuple
+    exchange: ExchangeSettings | None
+    platform: PlatformSettings
+    run: RunSettings
+    basins: dict           # name -> {coordinate: (lower, upper)}
+    analysis: AnalysisSettings
+
+    @property
+    def base_dir(self):
+        return self.path.parent
+
+    @property
+    def n_windows(self):
+        return math.prod(len(axis.centres) for axis in self.umbrella) if self.umbrella else 1
+
+
+def load_protocol(path):
+    """Read, parse and validate a protocol file.
+
+    Raises
+    ------
+    ProtocolError, InputError
+        One line naming the file, the key path and what was expected.
+    """
+    path = Path(path)
+    text = read_text(path, "protocol")
+    return parse_protocol(text, path)
+
+
+def parse_protocol(text, path):
+    """Validate protocol ``text`` as if read from ``path`` (for messages and relative paths)."""
+    path = Path(path)
+    root = parse_yaml(text, path)
+    root.mapping(allowed=TOP_KEYS, required=("protocol", "system", "seed", "temperature", "timestep", "run"))
+    version = root.get("protocol")
+    if version.value != SCHEMA_VERSION:
+        version.fail(f"the schema version {SCHEMA_VERSION}")
+    temperature = root.get("temperature").quantity("temperature", positive=True)
+    coordinates = _read_coordinates(root.get("coordinates", {}))
+    timestep = root.get("timestep").quantity("time", positive=True)
+    pressure = None
+    if root.has("pressure"):
+        pressure = root.get("pressure").quantity("pressure", positive=True)
+    return Protocol(
+        path=path, text=text, sha256=hashlib.sha256(text.encode()).hexdigest(),
+        title=_read_title(root), seed=root.get("seed").integer(minimum=0),
+        temperature=temperature, timestep=timestep,
+        friction=root.get("friction", "1/ps").quantity("rate", positive=True),
+        pressure=pressure, system=root.get("system"), coordinates=coordinates,
+        walls=_read_walls(root.get("walls", []), coordinates),
+        umbrella=_read_umbrella(root.get("umbrella", {}), coordinates),
+        temperatures=_read_temperatures(root.get("temperatures", None), temperature),
+        exchange=_read_exchange(root.get("exchange", None)),
+        platform=_read_platform(root.get("platform", {})),
+        run=_read_run(root.get("run"), timestep),
+        basins=_read_basins(root.get("basins", {}), coordinates),
+        analysis=_read_analysis(root.get("analysis", {}), coordinates),
+    )
+
+
+def _read_title(root):
+    title = root.get("title", "untitled")
+    return title.text()
+
+
+# -- coordinates ----------------------------------------------------------------------
+def _read_coordinates(node):
+    specs = {}
+    for name, entry in node.items():
+        if not isinstance(name, str) or not _NAME.match(name) or name in _RESERVED:
+            entry.fail("named by an identifier (letters, digits, _; not " + ", ".join(sorted(_RESERVED)) + ")",
+                       got=name)
+        kinds = [*_POINT_COUNT, "combination"]
+        entry.mapping(allowed=[*kinds, "axis"])
+        given = [kind for kind in kinds if entry.has(kind)]
+        if len(given) != 1:
+            entry.fail("a mapping with exactly one of " + ", ".join(kinds), got=entry.value)
+        kind = given[0]
+        if kind == "combination":
+            specs[name] = _read_combination(name, entry.get(kind), specs)
+            continue
+        if kind != "position" and entry.has("axis"):
+            raise ProtocolError(f"{entry.get('axis').place} is only for a position coordinate.")
+        body = entry.get(kind)
+        points = [body] if kind == "position" else body.sequence()
+        if len(points) != _POINT_COUNT[kind]:
+            body.fail(f"a list of {_POINT_COUNT[kind]} atoms or centres for a {kind}")
+        axis = None
+        if kind == "position":
+            axis = _AXES[entry.get("axis").text(choices=tuple(_AXES))]
+        specs[name] = CoordinateSpec(
+            name=name, kind=kind, points=tuple(_read_point(p) for p in points), axis=axis,
+            unit="rad" if kind in ("angle", "dihedral") else "nm")
+    return specs
+
+
+def _read_point(node):
+    value = node.value
+    if isinstance(value, dict):
+        node.mapping(allowed=("centre",), required=("centre",))
+        inner = node.get("centre")
+        if isinstance(inner.value, list):
+            indices = tuple(_index(item) for item in inner.sequence(min_length=1))
+            return PointSpec(atoms=indices, centre=True, place=inner.place)
+        return PointSpec(atoms=inner.text(), centre=True, place=inner.place)
+    if isinstance(value, int) and not isinstance(value, bool):
+        return PointSpec(atoms=_index(node), centre=False, place=node.place)
+    if isinstance(value, str) and value.strip():
+        return PointSpec(atoms=value, centre=False, place=node.place)
+    node.fail("an mdtraj selection text, a 0-based atom index, or {centre: selection}")
+
+
+def _index(node):
+    return node.integer(minimum=0)
+
+
+def _read_combination(name, node, known):
+    terms = []
+    for other, coefficient in node.items():
+        if other not in known or known[other].kind == "combination":
+            coefficient.fail("a coefficient of a coordinate defined above it (not a combination)", got=other)
+        terms.append((coefficient.number(), other))
+    if not terms:
+        node.fail("a mapping of coordinate names to coefficients")
+    units = {known[other].unit for _, other in terms}
+    if len(units) != 1:
+        node.fail("a combination of coordinates with the same unit (all lengths or all angles)")
+    return CoordinateSpec(name=name, kind="combination", terms=tuple(terms), unit=units.pop())
+
+
+def _coordinate(node, coordinates):
+    name = node.text()
+    if name not in coordinates:
+        known = ", ".join(coordinates) or "none defined"
+        node.fail(f"the name of a coordinate under 'coordinates' ({known})")
+    return coordinates[name]
+
+
+# -- biases ---------------------------------------------------------------------------
+def _read_walls(node, coordinates):
+    walls = []
+    for entry in node.sequence():
+        entry.mapping(allowed=("coordinate", "lower", "upper", "spring"), required=("coordinate", "spring"))
+        coordinate = _coordinate(entry.get("coordinate"), coordinates)
+        if coordinate.periodic:
+            entry.get("coordinate").fail("a non-periodic coordinate (walls on a dihedral are not supported)")
+        bounds = [entry.get(key).quantity(coordinate.value_dimension) if entry.has(key) else None
+                  for key in ("lower", "upper")]
+        if bounds == [None, None]:
+            entry.fail("a wall with a 'lower' or an 'upper' bound (or both)")
+        if None not in bounds and bounds[0] >= bounds[1]:
+            entry.get("upper").fail("above 'lower'")
+        spring = entry.get("spring").quantity(coordinate.spring_dimension, positive=True)
+        walls.append(Wall(coordinate.name, bounds[0], bounds[1], spring))
+    return tuple(walls)
+
+
+def _read_umbrella(node, coordinates):
+    axes = []
+    for name, entry in node.items():
+        coordinate = _coordinate(Node(name, node.file, entry.path), coordinates)
+        entry.mapping(allowed=("centres", "spring"), required=("centres", "spring"))
+        centres = _read_centres(entry.get("centres"), coordinate)
+        springs = _read_springs(entry.get("spring"), coordinate, len(centres))
+        axes.append(UmbrellaAxis(coordinate.name, centres, springs))
+    if len(axes) > 2:
+        node.fail("windows along one coordinate or a grid over two")
+    return tuple(axes)
+
+
+def _read_centres(node, coordinate):
+    dimension = coordinate.value_dimension
+    if isinstance(node.value, list):
+        centres = tuple(item.quantity(dimension) for item in node.sequence(min_length=1))
+    else:
+        node.mapping(allowed=("from", "to", "count"), required=("from", "to", "count"))
+        start = node.get("from").quantity(dimension)
+        stop = node.get("to").quantity(dimension)
+        count = node.get("count").integer(minimum=2)
+        if stop <= start:
+            node.get("to").fail("above 'from'")
+        centres = tuple(np.linspace(start, stop, count).tolist())
+    if coordinate.periodic:
+        outside = [c for c in centres if not -math.pi - 1e-9 <= c <= math.pi + 1e-9]
+        if outside:
+            node.fail("centres within -180 deg and 180 deg for a dihedral")
+    if len(set(centres)) != len(centres):
+        node.fail("distinct window centres")
+    return centres
+
+
+def _read_springs(node, coordinate, count):
+    dimension = coordinate.spring_dimension
+    if isinstance(node.value, list):
+        springs = tuple(item.quantity(dimension, positive=True) for item in node.sequence())
+        if len(springs) != count:
+            node.fail(f"one spring constant, or a list of {count} (one per window)")
+        return springs
+    return (node.quantity(dimension, positive=True),) * count
+
+
+def _read_temperatures(node, temperature):
+    if node.value is None:
+        return (temperature,)
+    if isinstance(node.value, list):
+        ladder = tuple(item.quantity("temperature", positive=True) for item in node.sequence(min_length=2))
+    else:
+        node.mapping(allowed=("lowest", "highest", "count"), required=("lowest", "highest", "count"))
+        lowest = node.get("lowest").quantity("temperature", positive=True)
+        highest = node.get("highest").quantity("temperature", positive=True)
+        count = node.get("count").integer(minimum=2)
+        if highest <= lowest:
+            node.get("highest").fail("above 'lowest'")
+        ladder = tuple(np.geomspace(lowest, highest, count).tolist())
+    if any(b <= a for a, b in zip(ladder, ladder[1:])):
+        node.fail("a strictly increasing list of temperatures")
+    return ladder
+
+
+def _read_exchange(node):
+    if node.value is None:
+        return None
+    node.mapping(allowed=("scheme", "attempts"))
+    scheme = node.get("scheme", "neighbours").text(choices=("neighbours", "all_pairs"))
+    return ExchangeSettings(scheme=scheme, attempts=node.get("attempts", 1).integer(minimum=1))
+
+
+def _read_platform(node):
+    if isinstance(node.value, str):
+        node = Node({"name": node.value}, node.file, node.path)
+    node.mapping(allowed=("name", "threads", "deterministic"))
+    name = node.get("name", "auto").text(choices=("auto", "Reference", "CPU"))
+    threads = node.get("threads", None)
+    return PlatformSettings(
+        name=name, threads=None if threads.value is None else threads.integer(minimum=1),
+        deterministic=node.get("deterministic", True).boolean())
+
+
+# -- run length -----------------------------------------------------------------------
+def _steps(node, timestep, what):
+    value = node.quantity("time", non_negative=True)
+    steps = value / timestep
+    if abs(steps - round(steps)) > 1e-6 * max(1.0, steps):
+        node.fail(f"a whole number of timesteps ({timestep * 1000:g} fs) for {what}")
+    return int(round(steps))
+
+
+def _cycles(node, steps_per_cycle, timestep, what):
+    steps = _steps(node, timestep, what)
+    if steps % steps_per_cycle:
+        node.fail(f"a whole number of cycles ({steps_per_cycle * timestep:g} ps each) for {what}")
+    return steps // steps_per_cycle
+
+
+def _read_run(node, timestep):
+    node.mapping(allowed=("cycle", "equilibration", "production", "frame_interval",
+                          "checkpoint_interval", "minimise"), required=("production",))
+    steps_per_cycle = _steps(node.get("cycle", "1 ps"), timestep, "a cycle")
+    if steps_per_cycle < 1:
+        node.get("cycle", "1 ps").fail("at least one timestep")
+    production = _cycles(node.get("production"), steps_per_cycle, timestep, "the production")
+    if production < 1:
+        node.get("production").fail("at least one cycle long")
+    frames = node.get("frame_interval", None)
+    return RunSettings(
+        steps_per_cycle=steps_per_cycle,
+        equilibration_cycles=_cycles(node.get("equilibration", "0 ps"), steps_per_cycle, timestep,
+                                     "the equilibration"),
+        production_cycles=production,
+        frame_every=0 if frames.value is None else max(
+            1, _cycles(frames, steps_per_cycle, timestep, "the frame interval")),
+        checkpoint_every=max(1, _cycles(node.get("checkpoint_interval", "10 ps"), steps_per_cycle,
+                                        timestep, "the checkpoint interval")),
+        minimise=node.get("minimise", True).boolean(),
+    )
+
+
+# -- analysis -------------------------------------------------------------------------
+def _read_interval(node, coordinate):
+    items = node.sequence()
+    if len(items) != 2:
+        node.fail(f"a list of two {coordinate.value_dimension}s [lower, upper]")
+    lower, upper = (item.quantity(coordinate.value_dimension) for item in items)
+    if lower == upper or (lower > upper and not coordinate.periodic):
+        node.fail("[lower, upper] with lower below upper (only a dihedral interval may wrap)")
+    return lower, upper
+
+
+def _read_basins(node, coordinates):
+    basins = {}
+    for name, entry in node.items():
+        if not isinstance(name, str) or not name.strip():
+            entry.fail("named by a non-empty text", got=name)
+        intervals = {}
+        for coordinate_name, interval in entry.items():
+            coordinate = _coordinate(Node(coordinate_name, node.file, interval.path), coordinates)
+            intervals[coordinate.name] = _read_interval(interval, coordinate)
+        if not intervals:
+            entry.fail("a mapping of coordinate names to [lower, upper] intervals")
+        basins[name] = intervals
+    return basins
+
+
+def _read_analysis(node, coordinates):
+    node.mapping(allowed=("bins", "energy_unit"))
+    bins = []
+    for name, entry in node.get("bins", {}).items():
+        coordinate = _coordinate(Node(name, node.file, entry.path), coordinates)
+        entry.mapping(allowed=("from", "to", "count"), required=("from", "to", "count"))
+        start = entry.get("from").quantity(coordinate.value_dimension)
+        stop = entry.get("to").quantity(coordinate.value_dimension)
+        if stop <= start:
+            entry.get("to").fail("above 'from'")
+        count = entry.get("count").integer(minimum=1)
+        bins.append(Bins(coordinate.name, tuple(np.linspace(start, stop, count + 1).tolist())))
+    unit = node.get("energy_unit", "kJ/mol").text(choices=("kJ/mol", "kcal/mol", "kT"))
+    return AnalysisSettings(bins=tuple(bins), energy_unit=unit)
+
+
+# -- atoms (needs the built topology) ---------------------------------------------------
+def resolve_coordinates(protocol, topology):
+    """Resolve every coordinate's atom selections on ``topology``.
+
+    Parameters
+    ----------
+    protocol : Protocol
+    topology : openmm.app.Topology
+
+    Returns
+    -------
+    dict of str to boost.coordinates.Coordinate
+    """
+    import mdtraj
+
+    from .coordinates import Coordinate
+
+    md_topology = mdtraj.Topology.from_openmm(topology)
+    resolved = {}
+    for name, spec in protocol.coordinates.items():
+        if spec.kind == "combination":
+            terms = tuple((coefficient, resolved[other]) for coefficient, other in spec.terms)
+            resolved[name] = Coordinate(name=name, kind="combination", terms=terms)
+            continue
+        groups = tuple(_resolve_point(point, md_topology) for point in spec.points)
+        for i, group in enumerate(groups):
+            for other in groups[i + 1:]:
+                if group == other:
+                    raise ProtocolError(f"{spec.points[i].place} names the same atoms as another point of '{name}'.")
+        resolved[name] = Coordinate(name=name, kind=spec.kind, groups=groups, axis=spec.axis)
+    return resolved
+
+
+def _resolve_point(point, md_topology):
+    n_atoms = md_topology.n_atoms
+    if isinstance(point.atoms, str):
+        try:
+            indices = tuple(int(i) for i in md_topology.select(point.atoms))
+        except Exception as err:  # mdtraj raises several types for a bad selection
+            raise ProtocolError(f"{point.place} must be an mdtraj selection. "
+                                f"Got {point.atoms!r}, which mdtraj cannot read ({err}).") from None
+    else:
+        indices = point.atoms if isinstance(point.atoms, tuple) else (point.atoms,)
+        bad = [i for i in indices if i >= n_atoms]
+        if bad:
+            raise ProtocolError(f"{point.place} must be atom indices below {n_atoms} (the system's atom count). "
+                                f"Got {bad[0]} instead.")
+    if not indices:
+        raise ProtocolError(f"{point.place} must select at least one atom. Got {point.atoms!r}, which matches none.")
+    if not point.centre and len(indices) != 1:
+        raise ProtocolError(f"{point.place} must select exactly one atom (use {{centre: ...}} for a group). "
+                            f"Got {point.atoms!r}, which matches {len(indices)}.")
+    return indices

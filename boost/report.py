@@ -1,0 +1,211 @@
+"""Tables (CSV, JSON) and plots (PNG) of an analysis, and the short table for the terminal.
+
+Every heading carries its unit. Files go to RUN/analysis/.
+"""
+
+import csv
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+
+
+def _fmt(value, digits=3):
+    return "nan" if value is None or not np.isfinite(value) else f"{value:.{digits}f}"
+
+
+def _axis_label(name, centres_in_degrees):
+    return f"{name} ({'deg' if centres_in_degrees else 'nm'})"
+
+
+def _is_angle(analysis, name):
+    return name in analysis.angle_coordinates
+
+
+def format_summary(analysis):
+    """A few lines for the terminal: basin populations and ΔG, condition overview."""
+    unit = analysis.energy_unit
+    lines = [f"analysis of {analysis.folder} at {analysis.temperature:.2f} K "
+             f"({int(analysis.samples_k.sum())} uncorrelated samples from {len(analysis.samples_k)} "
+             f"condition{'s' if len(analysis.samples_k) != 1 else ''})"]
+    basins = analysis.basins
+    if basins is not None:
+        lines.append(f"{'basin':12s} {'population':>11s} {'± error':>9s} {'G − G(' + basins.names[0] + ') (' + unit + ')':>24s} {'± error':>9s}")
+        for i, name in enumerate(basins.names):
+            lines.append(f"{name:12s} {_fmt(basins.populations[i], 4):>11s} {_fmt(basins.d_populations[i], 4):>9s} "
+                         f"{_fmt(basins.Delta_g[0, i]):>24s} {_fmt(basins.d_Delta_g[0, i]):>9s}")
+    for profile in analysis.profiles:
+        if len(profile.coordinates) == 1:
+            finite = np.isfinite(profile.f)
+            top = np.nanmax(profile.f[finite]) if finite.any() else math.nan
+            lines.append(f"PMF along {profile.coordinates[0]}: {finite.sum()} bins with samples, "
+                         f"highest {_fmt(top, 2)} {unit} above the minimum")
+    if analysis.poor_pairs:
+        lines.append(f"warning: {len(analysis.poor_pairs)} neighbouring pair(s) overlap poorly (see above)")
+    if analysis.swaps is not None:
+        trips = analysis.swaps.round_trips_r
+        lines.append(f"round trips per walker: {', '.join(str(int(t)) for t in trips)}")
+    return "\n".join(lines)
+
+
+def write_report(analysis, folder=None):
+    """Write CSV/JSON tables and PNG plots; return the folder they are in."""
+    out = Path(folder or Path(analysis.folder) / "analysis")
+    out.mkdir(parents=True, exist_ok=True)
+    _write_conditions(analysis, out)
+    if analysis.basins is not None:
+        _write_basins(analysis, out)
+    for profile in analysis.profiles:
+        _write_profile(analysis, profile, out)
+    if analysis.swaps is not None:
+        _write_swaps(analysis, out)
+    (out / "summary.json").write_text(json.dumps(_summary(analysis), indent=2))
+    _plot_all(analysis, out)
+    return out
+
+
+def _write_rows(path, header, rows):
+    with open(path, "w", newline="") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(header)
+        writer.writerows(rows)
+
+
+def _write_conditions(analysis, out):
+    rows = [(k, analysis.condition_labels[k], int(analysis.samples_k[k]), int(analysis.t0_k[k]),
+             _fmt(analysis.g_k[k], 2), _fmt(analysis.f_k[k], 4), _fmt(analysis.df_k[k], 4))
+            for k in range(len(analysis.samples_k))]
+    _write_rows(out / "conditions.csv", ["condition", "label", "uncorrelated samples",
+                                         "equilibration discarded (cycles)", "statistical inefficiency (cycles)",
+                                         "f (kT)", "f error (kT)"], rows)
+    _write_rows(out / "overlap.csv", ["condition"] + [str(k) for k in range(len(analysis.overlap))],
+                [[k] + [f"{x:.4f}" for x in row] for k, row in enumerate(analysis.overlap)])
+
+
+def _write_basins(analysis, out):
+    basins, unit = analysis.basins, analysis.energy_unit
+    _write_rows(out / "basins.csv", ["basin", "population", "population error"],
+                [(n, _fmt(p, 5), _fmt(d, 5)) for n, p, d in zip(basins.names, basins.populations,
+                                                                   basins.d_populations)])
+    rows = [(a, b, _fmt(basins.Delta_g[i, j], 4), _fmt(basins.d_Delta_g[i, j], 4))
+            for i, a in enumerate(basins.names) for j, b in enumerate(basins.names) if i != j]
+    _write_rows(out / "free-energy-differences.csv",
+                ["from basin", "to basin", f"ΔG ({unit})", f"ΔG error ({unit})"], rows)
+
+
+def _profile_name(profile):
+    return "pmf-" + "-".join(profile.coordinates)
+
+
+def _write_profile(analysis, profile, out):
+    unit = analysis.energy_unit
+    labels = [_axis_label(n, _is_angle(analysis, n)) for n in profile.coordinates]
+    grids = np.meshgrid(*profile.centres, indexing="ij")
+    rows = [[_fmt(g[index], 5) for g in grids] + [_fmt(profile.f[index], 4), _fmt(profile.df[index], 4),
+                                                   int(profile.counts[index])]
+            for index in np.ndindex(profile.f.shape)]
+    _write_rows(out / f"{_profile_name(profile)}.csv", labels + [f"PMF ({unit})", f"PMF error ({unit})", "samples"],
+                rows)
+
+
+def _write_swaps(analysis, out):
+    swaps = analysis.swaps
+    n = len(swaps.acceptance_ij)
+    _write_rows(out / "swap-acceptance.csv", ["condition"] + [str(k) for k in range(n)],
+                [[k] + [_fmt(x, 4) for x in row] for k, row in enumerate(swaps.acceptance_ij)])
+    _write_rows(out / "round-trips.csv", ["walker", "round trips"],
+                [(r, int(t)) for r, t in enumerate(swaps.round_trips_r)])
+
+
+def _clean(array):
+    return [None if not np.isfinite(x) else float(x) for x in np.ravel(array)]
+
+
+def _summary(analysis):
+    result = {"temperature (K)": analysis.temperature, "energy unit": analysis.energy_unit,
+              "cycles in ledger": analysis.n_cycles,
+              "conditions": [{"label": analysis.condition_labels[k], "uncorrelated samples": int(analysis.samples_k[k]),
+                              "f (kT)": float(analysis.f_k[k]), "f error (kT)": float(analysis.df_k[k])}
+                             for k in range(len(analysis.samples_k))]}
+    if analysis.basins is not None:
+        b = analysis.basins
+        result["basins"] = {name: {"population": float(b.populations[i]), "population error": float(b.d_populations[i])}
+                            for i, name in enumerate(b.names)}
+        result["free-energy differences"] = [
+            {"from": a, "to": c, f"ΔG ({analysis.energy_unit})": float(b.Delta_g[i, j]),
+             f"ΔG error ({analysis.energy_unit})": float(b.d_Delta_g[i, j])}
+            for i, a in enumerate(b.names) for j, c in enumerate(b.names) if i < j]
+    result["profiles"] = [{"coordinates": list(p.coordinates), "file": _profile_name(p) + ".csv"}
+                          for p in analysis.profiles]
+    if analysis.swaps is not None:
+        result["round trips per walker"] = [int(t) for t in analysis.swaps.round_trips_r]
+    return result
+
+
+def _plot_all(analysis, out):
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    for profile in analysis.profiles:
+        fig, ax = plt.subplots(figsize=(6, 4))
+        if len(profile.coordinates) == 1:
+            x, f, df = profile.centres[0], profile.f, profile.df
+            ax.plot(x, f, "o-", ms=3, color="tab:blue")
+            ax.fill_between(x, f - df, f + df, color="tab:blue", alpha=0.25, label="± one standard error")
+            ax.set_xlabel(_axis_label(profile.coordinates[0], _is_angle(analysis, profile.coordinates[0])))
+            ax.set_ylabel(f"PMF ({analysis.energy_unit})")
+            ax.legend(loc="best")
+        else:
+            image = ax.pcolormesh(profile.centres[0], profile.centres[1], profile.f.T, shading="nearest")
+            fig.colorbar(image, ax=ax, label=f"PMF ({analysis.energy_unit})")
+            ax.set_xlabel(_axis_label(profile.coordinates[0], _is_angle(analysis, profile.coordinates[0])))
+            ax.set_ylabel(_axis_label(profile.coordinates[1], _is_angle(analysis, profile.coordinates[1])))
+        ax.set_title(f"free-energy profile at {analysis.temperature:.1f} K")
+        fig.tight_layout()
+        fig.savefig(out / f"{_profile_name(profile)}.png", dpi=120)
+        plt.close(fig)
+    if analysis.window_values:
+        _plot_windows(analysis, out, plt)
+    if analysis.swaps is not None:
+        _plot_swaps(analysis, out, plt)
+
+
+def _plot_windows(analysis, out, plt):
+    fig, ax = plt.subplots(figsize=(6, 4))
+    name = analysis.umbrella_coordinates[0]
+    for values in analysis.window_values:
+        if len(values):
+            ax.hist(values[:, 0], bins=40, histtype="step")
+    ax.set_xlabel(_axis_label(name, _is_angle(analysis, name)))
+    ax.set_ylabel("samples")
+    ax.set_title("coordinate histograms, one per window")
+    fig.tight_layout()
+    fig.savefig(out / "windows.png", dpi=120)
+    plt.close(fig)
+
+
+def _plot_swaps(analysis, out, plt):
+    fig, ax = plt.subplots(figsize=(7, 4))
+    for r, trace in enumerate(analysis.walker_traces):
+        ax.step(np.arange(len(trace)), trace, where="post", lw=0.8, label=f"walker {r}")
+    ax.set_xlabel("production cycle")
+    ax.set_ylabel("condition held")
+    ax.set_title("walker traces through the ladder")
+    if len(analysis.walker_traces) <= 10:
+        ax.legend(fontsize="small", ncol=2)
+    fig.tight_layout()
+    fig.savefig(out / "walker-traces.png", dpi=120)
+    plt.close(fig)
+    acceptance = analysis.swaps.acceptance_ij
+    n = len(acceptance)
+    neighbours = [acceptance[k, k + 1] for k in range(n - 1)]
+    fig, ax = plt.subplots(figsize=(6, 4))
+    ax.bar([f"{k}–{k + 1}" for k in range(n - 1)], neighbours, color="tab:green")
+    ax.set_xlabel("neighbouring conditions")
+    ax.set_ylabel("swap acceptance (fraction)")
+    ax.set_ylim(0, 1)
+    fig.tight_layout()
+    fig.savefig(out / "swap-acceptance.png", dpi=120)
+    plt.close(fig)

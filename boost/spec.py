@@ -1,0 +1,193 @@
+"""Reading YAML specs (protocols, system files) with the key path of every value.
+
+A :class:`Node` wraps one YAML value with the file it came from and its key path, so
+every check can raise the one error form boost uses::
+
+    protocol.yaml: run.timestep must be a time with its unit, such as '2 fs'. Got '2' instead.
+
+Only safe YAML loading is used; duplicate keys are errors.
+"""
+
+import difflib
+from pathlib import Path
+
+import yaml
+
+from .exceptions import InputError, ProtocolError, where
+from .units import parse_quantity
+
+_MISSING = object()
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """Safe loader that refuses duplicate keys instead of keeping the last one."""
+
+
+def _construct_mapping(loader, node, deep=False):
+    loader.flatten_mapping(node)
+    seen = {}
+    for key_node, _ in node.value:
+        key = loader.construct_object(key_node, deep=deep)
+        if not isinstance(key, (str, int, float, bool)) and key is not None:
+            raise yaml.constructor.ConstructorError(
+                None, None, "keys must be plain text", key_node.start_mark)
+        if key in seen:
+            raise yaml.constructor.ConstructorError(
+                None, None, f"duplicate key {key!r}", key_node.start_mark)
+        seen[key] = True
+    return loader.construct_mapping(node, deep=deep)
+
+
+_StrictLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+
+
+def parse_yaml(text, file):
+    """Parse YAML text into a :class:`Node`; syntax errors name the file and line."""
+    try:
+        data = yaml.load(text, Loader=_StrictLoader)  # noqa: S506 (a SafeLoader subclass)
+    except yaml.MarkedYAMLError as err:
+        mark = err.problem_mark or err.context_mark
+        line = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        raise ProtocolError(f"{file}: is not valid YAML{line}: {err.problem or err.context}.") from None
+    except yaml.YAMLError as err:
+        raise ProtocolError(f"{file}: is not valid YAML: {err}.") from None
+    except RecursionError:
+        raise ProtocolError(f"{file}: is nested too deeply to read.") from None
+    return Node(data, file, "")
+
+
+def read_text(path, what):
+    """Read a text file, turning every OS problem into one InputError line."""
+    path = Path(path)
+    try:
+        return path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError(f"{path}: {what} file not found.") from None
+    except IsADirectoryError:
+        raise InputError(f"{path}: {what} file expected, found a folder.") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: {what} file is not UTF-8 text.") from None
+    except OSError as err:
+        raise InputError(f"{path}: {what} file cannot be read ({err.strerror}).") from None
+
+
+def load_yaml(path, what="protocol"):
+    """Read and parse a YAML file into a :class:`Node`."""
+    return parse_yaml(read_text(path, what), Path(path))
+
+
+class Node:
+    """One value of a YAML document, with its file and key path for error messages."""
+
+    def __init__(self, value, file, path):
+        self.value = value
+        self.file = file
+        self.path = path
+
+    @property
+    def place(self):
+        return where(self.file, self.path or "(top level)")
+
+    def fail(self, expected, got=_MISSING):
+        got = self.value if got is _MISSING else got
+        raise ProtocolError(f"{self.place} must be {expected}. Got {_show(got)} instead.")
+
+    def _child_path(self, key):
+        if isinstance(key, int):
+            return f"{self.path}[{key}]"
+        return f"{self.path}.{key}" if self.path else str(key)
+
+    # -- mappings ---------------------------------------------------------------------
+    def mapping(self, allowed=None, required=()):
+        """Check this is a mapping whose keys are all in ``allowed`` and include ``required``."""
+        if not isinstance(self.value, dict):
+            self.fail("a mapping of keys to values")
+        if allowed is not None:
+            for key in self.value:
+                if key not in allowed:
+                    hint = difflib.get_close_matches(str(key), [str(a) for a in allowed], n=1)
+                    suggestion = f" Did you mean '{hint[0]}'?" if hint else ""
+                    options = ", ".join(sorted(str(a) for a in allowed))
+                    raise ProtocolError(
+                        f"{where(self.file, self._child_path(key))} is not a known key.{suggestion}"
+                        f" Known keys here: {options}.")
+        for key in required:
+            if key not in self.value:
+                raise ProtocolError(f"{where(self.file, self._child_path(key))} is required but missing.")
+        return self
+
+    def has(self, key):
+        return isinstance(self.value, dict) and key in self.value
+
+    def get(self, key, default=_MISSING):
+        """The child node at ``key``; a missing key gives ``default`` wrapped, or an error."""
+        if not isinstance(self.value, dict):
+            self.fail("a mapping of keys to values")
+        if key in self.value:
+            return Node(self.value[key], self.file, self._child_path(key))
+        if default is _MISSING:
+            raise ProtocolError(f"{where(self.file, self._child_path(key))} is required but missing.")
+        return Node(default, self.file, self._child_path(key))
+
+    def items(self):
+        self.mapping()
+        return [(key, Node(value, self.file, self._child_path(key))) for key, value in self.value.items()]
+
+    def sequence(self, min_length=0):
+        if not isinstance(self.value, list):
+            self.fail("a list")
+        if len(self.value) < min_length:
+            self.fail(f"a list of at least {min_length} item{'s' if min_length != 1 else ''}")
+        return [Node(item, self.file, self._child_path(i)) for i, item in enumerate(self.value)]
+
+    # -- scalars ----------------------------------------------------------------------
+    def text(self, choices=None):
+        if not isinstance(self.value, str) or not self.value.strip():
+            self.fail("a non-empty text" if choices is None else "one of " + ", ".join(map(repr, choices)))
+        if choices is not None and self.value not in choices:
+            self.fail("one of " + ", ".join(map(repr, choices)))
+        return self.value
+
+    def integer(self, minimum=None):
+        if isinstance(self.value, bool) or not isinstance(self.value, int):
+            self.fail("a whole number" + (f" of at least {minimum}" if minimum is not None else ""))
+        if minimum is not None and self.value < minimum:
+            self.fail(f"a whole number of at least {minimum}")
+        return self.value
+
+    def number(self):
+        if isinstance(self.value, bool) or not isinstance(self.value, (int, float)):
+            self.fail("a plain number")
+        if self.value != self.value or abs(self.value) == float("inf"):
+            self.fail("a finite number")
+        return float(self.value)
+
+    def boolean(self):
+        if not isinstance(self.value, bool):
+            self.fail("true or false")
+        return self.value
+
+    def quantity(self, dimension, *, positive=False, non_negative=False):
+        """A float in OpenMM's MD unit (see :func:`boost.units.parse_quantity`)."""
+        number = parse_quantity(self.value, dimension, place=self.place)
+        if positive and number <= 0:
+            self.fail(f"positive, such as '{_example(dimension)}'")
+        if non_negative and number < 0:
+            self.fail(f"zero or positive, such as '{_example(dimension)}'")
+        return number
+
+    def path_value(self, base_dir):
+        """A file path, relative to ``base_dir`` (the folder of the file it is written in)."""
+        text = self.text()
+        path = Path(text).expanduser()
+        return path if path.is_absolute() else (Path(base_dir) / path)
+
+
+def _example(dimension):
+    from .units import DIMENSIONS
+    return DIMENSIONS[dimension][3]
+
+
+def _show(value):
+    text = repr(value)
+    return text if len(text) <= 80 else text[:77] + "..."

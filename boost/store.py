@@ -1,0 +1,257 @@
+"""The run folder: ledger, frames, checkpoints, protocol copy and provenance.
+
+Layout::
+
+    RUN/
+      protocol.yaml     the protocol text, byte for byte
+      provenance.json   protocol hash, seeds, platform, package versions, host, times
+      ledger.sqlite     one transaction per cycle (see below)
+      topology.pdb      the starting structure, for reading frames with mdtraj
+      frames/walker-NNN.dcd
+      checkpoints/      OpenMM checkpoints and scheduler state
+
+Ledger tables (units in column comments): ``conditions`` (index, temperature K, centres,
+springs as JSON), ``cycles`` (cycle, time ps, production 0/1), ``samples`` (cycle,
+walker, condition, potential kJ/mol, volume nm³, one column per coordinate in nm or rad,
+reduced: float64 bytes of u_k for every condition k, in kT), ``swaps`` (cycle, pair of
+conditions, attempts, accepted) and ``frames`` (walker, cycle, index in its DCD file).
+"""
+
+import hashlib
+import json
+import os
+import sqlite3
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .conditions import Condition
+from .exceptions import RunFolderError
+
+LEDGER = "ledger.sqlite"
+PROTOCOL = "protocol.yaml"
+PROVENANCE = "provenance.json"
+
+
+def write_atomically(path, data):
+    """Write bytes or text to ``path`` through a temporary file and a rename."""
+    path = Path(path)
+    temporary = path.with_name(path.name + ".partial")
+    mode = "wb" if isinstance(data, bytes) else "w"
+    with open(temporary, mode) as handle:
+        handle.write(data)
+        handle.flush()
+        os.fsync(handle.fileno())
+    os.replace(temporary, path)
+
+
+def protocol_hash(text):
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def check_folder_for(path, protocol_text):
+    """Return 'new', 'same' (a run of this very protocol) or raise for a foreign folder."""
+    path = Path(path)
+    if not path.exists():
+        return "new"
+    if not path.is_dir():
+        raise RunFolderError(f"{path}: is a file, not a run folder.")
+    copy = path / PROTOCOL
+    if not copy.exists():
+        if any(path.iterdir()):
+            raise RunFolderError(f"{path}: is not empty and is not a run folder; choose another folder.")
+        return "new"
+    if protocol_hash(copy.read_text(encoding="utf-8")) != protocol_hash(protocol_text):
+        raise RunFolderError(f"{path}: belongs to another protocol (its {PROTOCOL} differs); "
+                             "choose another folder or remove it.")
+    return "same"
+
+
+class Ledger:
+    """Writer of the SQLite ledger; one transaction per cycle."""
+
+    def __init__(self, path, *, coordinate_names=()):
+        self.path = Path(path)
+        self.coordinate_names = tuple(coordinate_names)
+        self.connection = sqlite3.connect(self.path)
+        self.connection.execute("PRAGMA journal_mode=WAL")
+        self.connection.execute("PRAGMA synchronous=FULL")
+
+    def create(self, conditions, metadata):
+        columns = "".join(f', "{name}" REAL' for name in self.coordinate_names)
+        with self.connection:
+            self.connection.executescript(f"""
+                CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT);
+                CREATE TABLE conditions (condition INTEGER PRIMARY KEY, temperature REAL,
+                                         centres TEXT, springs TEXT);
+                CREATE TABLE cycles (cycle INTEGER PRIMARY KEY, time REAL, production INTEGER);
+                CREATE TABLE samples (cycle INTEGER, walker INTEGER, condition INTEGER,
+                                      potential REAL, volume REAL{columns}, reduced BLOB,
+                                      PRIMARY KEY (cycle, walker));
+                CREATE TABLE swaps (cycle INTEGER, condition_i INTEGER, condition_j INTEGER,
+                                    attempts INTEGER, accepted INTEGER);
+                CREATE TABLE frames (walker INTEGER, cycle INTEGER, frame INTEGER);
+            """)
+            self.connection.executemany("INSERT INTO meta VALUES (?, ?)",
+                                        [(k, json.dumps(v)) for k, v in metadata.items()])
+            self.connection.executemany(
+                "INSERT INTO conditions VALUES (?, ?, ?, ?)",
+                [(c.index, c.temperature, json.dumps(c.centres), json.dumps(c.springs)) for c in conditions])
+
+    def record_cycle(self, cycle, *, time, production, condition_r, potential_r, volume_r,
+                     values_rc, u_kr, swaps=(), frames=()):
+        """Store one complete cycle in one transaction.
+
+        values_rc : ndarray, shape (n_walkers, n_coordinates), nm or rad
+        u_kr : ndarray, shape (n_conditions, n_walkers), kT
+        swaps : iterable of (condition_i, condition_j, attempts, accepted)
+        frames : iterable of (walker, frame index)
+        """
+        placeholders = ", ".join("?" * (6 + len(self.coordinate_names)))
+        rows = [(cycle, r, int(condition_r[r]), float(potential_r[r]),
+                 None if volume_r[r] is None else float(volume_r[r]),
+                 *map(float, values_rc[r]), np.ascontiguousarray(u_kr[:, r], dtype="<f8").tobytes())
+                for r in range(len(condition_r))]
+        with self.connection:
+            self.connection.execute("INSERT INTO cycles VALUES (?, ?, ?)", (cycle, time, int(production)))
+            self.connection.executemany(f"INSERT INTO samples VALUES ({placeholders})", rows)
+            self.connection.executemany("INSERT INTO swaps VALUES (?, ?, ?, ?, ?)",
+                                        [(cycle, *map(int, s)) for s in swaps])
+            self.connection.executemany("INSERT INTO frames VALUES (?, ?, ?)",
+                                        [(walker, cycle, index) for walker, index in frames])
+
+    def last_cycle(self):
+        row = self.connection.execute("SELECT MAX(cycle) FROM cycles").fetchone()
+        return -1 if row[0] is None else row[0]
+
+    def close(self):
+        self.connection.close()
+
+
+@dataclass(frozen=True)
+class LedgerData:
+    """Everything the analysis needs, read from a ledger.
+
+    Attributes
+    ----------
+    conditions : tuple of Condition
+    coordinate_names : tuple of str
+    cycle_t, time_t, production_t : ndarray, shape (n_cycles,)
+    condition_rt : ndarray of int, shape (n_walkers, n_cycles)
+    potential_rt, volume_rt : ndarray, shape (n_walkers, n_cycles), kJ/mol and nm³ (NaN: none)
+    values_rtc : ndarray, shape (n_walkers, n_cycles, n_coordinates), nm or rad
+    u_krt : ndarray, shape (n_conditions, n_walkers, n_cycles), kT
+    swaps : ndarray, shape (n_swap_rows, 5): cycle, condition_i, condition_j, attempts, accepted
+    metadata : dict
+    """
+
+    conditions: tuple
+    coordinate_names: tuple
+    cycle_t: np.ndarray
+    time_t: np.ndarray
+    production_t: np.ndarray
+    condition_rt: np.ndarray
+    potential_rt: np.ndarray
+    volume_rt: np.ndarray
+    values_rtc: np.ndarray
+    u_krt: np.ndarray
+    swaps: np.ndarray
+    metadata: dict
+
+
+def read_ledger(folder):
+    """Read a run folder's ledger (complete cycles only) into arrays."""
+    path = Path(folder) / LEDGER
+    if not path.is_file():
+        raise RunFolderError(f"{folder}: is not a run folder (no {LEDGER}).")
+    connection = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    try:
+        return _read(connection)
+    except sqlite3.DatabaseError as err:
+        raise RunFolderError(f"{path}: cannot be read as a ledger ({err}).") from None
+    finally:
+        connection.close()
+
+
+def _read(connection):
+    metadata = {k: json.loads(v) for k, v in connection.execute("SELECT key, value FROM meta")}
+    conditions = tuple(Condition(i, t, tuple(json.loads(c)), tuple(json.loads(s)))
+                       for i, t, c, s in connection.execute("SELECT * FROM conditions ORDER BY condition"))
+    names = tuple(metadata["coordinates"])
+    cycles = np.array(connection.execute("SELECT cycle, time, production FROM cycles ORDER BY cycle").fetchall(),
+                      dtype=float).reshape(-1, 3)
+    n_walkers = metadata["n_walkers"]
+    n_cycles = len(cycles)
+    quoted = "".join(f', "{name}"' for name in names)
+    rows = connection.execute(
+        f"SELECT condition, potential, volume{quoted}, reduced FROM samples ORDER BY cycle, walker").fetchall()
+    rows = rows[: n_cycles * n_walkers]
+    table = np.array([row[:-1] for row in rows], dtype=float).reshape(n_cycles, n_walkers, 3 + len(names))
+    reduced = np.frombuffer(b"".join(row[-1] for row in rows), dtype="<f8")
+    u_krt = reduced.reshape(n_cycles, n_walkers, len(conditions)).transpose(2, 1, 0)
+    swaps = np.array(connection.execute("SELECT * FROM swaps ORDER BY cycle").fetchall(), dtype=int).reshape(-1, 5)
+    return LedgerData(
+        conditions=conditions, coordinate_names=names,
+        cycle_t=cycles[:, 0].astype(int), time_t=cycles[:, 1], production_t=cycles[:, 2].astype(bool),
+        condition_rt=table[:, :, 0].T.astype(int), potential_rt=table[:, :, 1].T,
+        volume_rt=table[:, :, 2].T, values_rtc=table[:, :, 3:].transpose(1, 0, 2),
+        u_krt=np.ascontiguousarray(u_krt), swaps=swaps, metadata=metadata)
+
+
+class FrameWriter:
+    """One DCD file per walker under frames/, appended at the frame interval."""
+
+    def __init__(self, folder, topology, n_walkers, *, timestep_ps, steps_between):
+        from openmm import app, unit
+
+        self._app, self._unit = app, unit
+        (Path(folder) / "frames").mkdir(exist_ok=True)
+        self.handles = [open(Path(folder) / "frames" / f"walker-{r:03d}.dcd", "wb") for r in range(n_walkers)]
+        self.files = [app.DCDFile(handle, topology, timestep_ps * unit.picosecond, steps_between, steps_between)
+                      for handle in self.handles]
+        self.counts = [0] * n_walkers
+
+    def write(self, walker, positions, box_vectors):
+        unit = self._unit
+        box = None if box_vectors is None else [self._vec(row) for row in box_vectors] * unit.nanometer
+        self.files[walker].writeModel(positions * unit.nanometer, periodicBoxVectors=box)
+        self.handles[walker].flush()
+        self.counts[walker] += 1
+        return self.counts[walker] - 1
+
+    @staticmethod
+    def _vec(row):
+        from openmm import Vec3
+        return Vec3(*map(float, row))
+
+    def close(self):
+        for handle in self.handles:
+            handle.close()
+
+
+def write_checkpoint(folder, *, cycle, walker_states, scheduler_state):
+    """Write all walkers' OpenMM checkpoints and the scheduler state as one file, atomically.
+
+    The file is a JSON header line (cycle, scheduler state, blob lengths) followed by the
+    walkers' checkpoint bytes; no pickle.
+    """
+    header = {"cycle": cycle, "scheduler": scheduler_state, "lengths": [len(b) for b in walker_states]}
+    data = json.dumps(header).encode() + b"\n" + b"".join(walker_states)
+    (Path(folder) / "checkpoints").mkdir(exist_ok=True)
+    write_atomically(Path(folder) / "checkpoints" / "state.bin", data)
+
+
+def read_checkpoint(folder):
+    """Return (cycle, scheduler_state, walker_states) or None when there is no checkpoint."""
+    path = Path(folder) / "checkpoints" / "state.bin"
+    if not path.exists():
+        return None
+    data = path.read_bytes()
+    line, _, rest = data.partition(b"\n")
+    header = json.loads(line)
+    states, offset = [], 0
+    for length in header["lengths"]:
+        states.append(rest[offset: offset + length])
+        offset += length
+    return header["cycle"], header["scheduler"], states

@@ -1,0 +1,118 @@
+"""Quantities with units: the one place where text becomes numbers.
+
+Protocol values carry units as text ("300 K", "2 fs", "200 kJ/mol/rad**2"). They are
+parsed with pint and converted once to OpenMM's MD units: nm, ps, K, kJ/mol, radians,
+amu, bar, mol/L. Angles are dimensionless to pint, so their presence is checked from the
+unit names: a spring on a dihedral must say ``/rad**2`` (or ``/deg**2``), and an angle
+must say ``deg`` or ``rad``.
+
+Energies become reduced (dimensionless, in kT) only through :func:`reduced`.
+"""
+
+import math
+import re
+
+import pint
+
+from .exceptions import ProtocolError
+
+REGISTRY = pint.UnitRegistry(on_redefinition="ignore")
+Q_ = REGISTRY.Quantity
+
+#: Boltzmann constant times Avogadro's number, kJ/mol/K (CODATA 2018, exact by definition
+#: of the SI since 2019; common practice, same value as openmm.unit.MOLAR_GAS_CONSTANT_R).
+MOLAR_GAS_CONSTANT = 8.314462618e-3
+
+_ANGLE_UNITS = {"radian", "degree", "turn", "arcminute", "arcsecond", "grade", "milliradian"}
+
+# Each dimension boost reads: the pint unit it converts to (OpenMM's MD unit), the power
+# of angle it must carry, an example for error messages.
+DIMENSIONS = {
+    "length": ("nm", 0, "a length", "0.5 nm"),
+    "time": ("ps", 0, "a time", "2 fs"),
+    "rate": ("1/ps", 0, "a rate", "1/ps"),
+    "temperature": ("K", 0, "a temperature", "300 K"),
+    "energy": ("kJ/mol", 0, "an energy", "5 kJ/mol"),
+    "angle": ("rad", 1, "an angle", "60 deg"),
+    "mass": ("g/mol", 0, "a mass", "12 amu"),
+    "pressure": ("bar", 0, "a pressure", "1 bar"),
+    "concentration": ("mol/L", 0, "a concentration", "0.15 molar"),
+    "spring_length": ("kJ/mol/nm**2", 0, "an energy per length squared", "1000 kJ/mol/nm**2"),
+    "spring_angle": ("kJ/mol/rad**2", -2, "an energy per angle squared", "200 kJ/mol/rad**2"),
+}
+
+_NUMBER = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(.*?)\s*$")
+REGISTRY.define("amu = g/mol")  # per particle in OpenMM's sense: molar mass in g/mol
+
+
+def _angle_power(quantity):
+    return sum(power for name, power in quantity._units.items() if name in _ANGLE_UNITS)
+
+
+def _parse(text):
+    match = _NUMBER.match(text)
+    if match and match.group(2) and not match.group(2).startswith(("/", "*")):
+        return Q_(float(match.group(1)), match.group(2))
+    return Q_(text)
+
+
+def parse_quantity(value, dimension, *, place):
+    """Convert text with a unit to a float in OpenMM's MD unit for ``dimension``.
+
+    Parameters
+    ----------
+    value : str
+        The text from the protocol, e.g. ``"2 fs"``.
+    dimension : str
+        A key of :data:`DIMENSIONS`.
+    place : str
+        ``file: key.path`` for the error message.
+
+    Returns
+    -------
+    float
+        The value in the MD unit of ``dimension`` (nm, ps, 1/ps, K, kJ/mol, rad, amu,
+        bar, mol/L, kJ/mol/nm**2, kJ/mol/rad**2).
+    """
+    target, angle_power, kind, example = DIMENSIONS[dimension]
+    expected = f"{place} must be {kind} with its unit, such as '{example}'."
+    if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+        raise ProtocolError(f"{expected} Got {value!r} instead.")
+    text = str(value)
+    if re.search(r"\bkT\b", text):
+        raise ProtocolError(f"{expected} Got {text!r}: kT depends on temperature; give kJ/mol or kcal/mol.")
+    try:
+        quantity = _parse(text)
+    except Exception:  # pint raises many types for bad text
+        raise ProtocolError(f"{expected} Got {text!r}, which is not a quantity pint can read.") from None
+    if not isinstance(quantity, pint.Quantity) or not quantity._units:
+        raise ProtocolError(f"{expected} Got {text!r}, a bare number without a unit.")
+    if _angle_power(quantity) != angle_power:
+        raise ProtocolError(f"{expected} Got {text!r}, which has the wrong angle units.")
+    try:
+        number = float(quantity.to(target).magnitude)
+    except (pint.DimensionalityError, pint.OffsetUnitCalculusError):
+        raise ProtocolError(f"{expected} Got {text!r}, which is not {kind}.") from None
+    if not math.isfinite(number):
+        raise ProtocolError(f"{expected} Got {text!r}, which is not finite.")
+    return number
+
+
+def beta(temperature):
+    """Inverse thermal energy 1/kT in mol/kJ for a temperature in K."""
+    return 1.0 / (MOLAR_GAS_CONSTANT * temperature)
+
+
+def reduced(energy, temperature):
+    """Energy in kJ/mol at ``temperature`` (K) as a reduced, dimensionless energy (kT)."""
+    return energy * beta(temperature)
+
+
+ENERGY_UNITS = {"kJ/mol": 1.0, "kcal/mol": 1.0 / 4.184}
+
+
+def energy_in(value_kt, unit, temperature):
+    """Convert a reduced energy (kT at ``temperature`` K) to ``unit``: 'kT', 'kJ/mol', 'kcal/mol'."""
+    if unit == "kT":
+        return value_kt
+    return value_kt / beta(temperature) * ENERGY_UNITS[unit]

@@ -1,0 +1,135 @@
+"""Protocol parsing: valid files become frozen objects; every bad input is one clear line."""
+
+import math
+
+import pytest
+
+from boost.exceptions import InputError, ProtocolError
+from boost.protocol import load_protocol, parse_protocol
+
+
+def edit(text, old, new):
+    assert old in text, old
+    return text.replace(old, new, 1)
+
+
+def test_valid_protocol_reads_units(write_protocol, double_well_text):
+    protocol = load_protocol(write_protocol(double_well_text))
+    assert protocol.temperature == 300.0
+    assert protocol.timestep == pytest.approx(0.002)
+    assert protocol.run.steps_per_cycle == 50
+    assert protocol.run.equilibration_cycles == 10 and protocol.run.production_cycles == 50
+    assert protocol.run.frame_every == 10
+    assert protocol.basins["left"]["x"] == (-1.0, 0.0)
+    assert protocol.temperatures == (300.0,) and protocol.umbrella == ()
+
+
+def test_umbrella_and_ladder(write_protocol, double_well_text):
+    text = double_well_text + """\
+umbrella:
+  x: {centres: {from: -0.15 nm, to: 0.15 nm, count: 7}, spring: 500 kJ/mol/nm**2}
+temperatures: {lowest: 300 K, highest: 600 K, count: 4}
+exchange: {scheme: neighbours}
+"""
+    protocol = load_protocol(write_protocol(text))
+    axis = protocol.umbrella[0]
+    assert len(axis.centres) == 7 and axis.centres[0] == pytest.approx(-0.15)
+    assert axis.springs == (500.0,) * 7
+    # geometric ladder: constant ratio (common practice, Predescu et al. 2004)
+    ratios = [b / a for a, b in zip(protocol.temperatures, protocol.temperatures[1:])]
+    assert ratios == pytest.approx([2 ** (1 / 3)] * 3)
+    assert protocol.n_windows == 7
+
+
+def test_dihedral_umbrella_in_degrees(write_protocol):
+    text = """\
+    protocol: 1
+    system: alanine-vacuum
+    seed: 1
+    temperature: 300 K
+    timestep: 2 fs
+    coordinates:
+      phi: {dihedral: [4, 6, 8, 14]}
+    umbrella:
+      phi: {centres: [-60 deg, 60 deg], spring: [100 kJ/mol/rad**2, 200 kJ/mol/rad**2]}
+    run: {production: 1 ps}
+    basins:
+      wrap: {phi: [150 deg, -150 deg]}
+    """
+    protocol = load_protocol(write_protocol(text))
+    assert protocol.umbrella[0].centres == pytest.approx((-math.pi / 3, math.pi / 3))
+    assert protocol.umbrella[0].springs == (100.0, 200.0)
+    assert protocol.basins["wrap"]["phi"] == pytest.approx((math.radians(150), math.radians(-150)))
+
+
+BAD = [
+    # (old, new, key path and expectation in the message)
+    ("timestep: 2 fs", "timestep: 2", r"protocol\.yaml: timestep must be a time .*bare number"),
+    ("timestep: 2 fs", "timestep: -2 fs", r"protocol\.yaml: timestep must be positive"),
+    ("timestep: 2 fs", "timestep: 2 nm", r"protocol\.yaml: timestep must be a time .*not a time"),
+    ("timestep: 2 fs", "timestpe: 2 fs", r"protocol\.yaml: timestpe is not a known key\. Did you mean 'timestep'\?"),
+    ("temperature: 300 K", "temperature: 0 K", r"protocol\.yaml: temperature must be positive"),
+    ("cycle: 0.1 ps", "cycle: 0.1", r"protocol\.yaml: run\.cycle must be a time"),
+    ("cycle: 0.1 ps", "cycle: 0.003 ps", r"protocol\.yaml: run\.cycle must be a whole number of timesteps"),
+    ("production: 5 ps", "production: 5.05 ps", r"run\.production must be a whole number of cycles"),
+    ("production: 5 ps", "productoin: 5 ps", r"run\.productoin is not a known key\. Did you mean 'production'"),
+    ("protocol: 1", "protocol: 7", r"protocol\.yaml: protocol must be the schema version 1"),
+    ("seed: 5", "seed: -1", r"protocol\.yaml: seed must be a whole number of at least 0"),
+    ("seed: 5", "seed: five", r"protocol\.yaml: seed must be a whole number"),
+    ("x: {position: 0, axis: x}", "x: {position: 0, axis: w}", r"coordinates\.x\.axis must be one of 'x', 'y', 'z'"),
+    ("x: {position: 0, axis: x}", "x: {dihedral: [0, 1]}", r"coordinates\.x\.dihedral must be a list of 4"),
+    ("x: {position: 0, axis: x}", "cycle: {position: 0, axis: x}", r"coordinates\.cycle must be named by an identifier"),
+    ("left: {x: [-1 nm, 0 nm]}", "left: {x: [-1, 0 nm]}", r"basins\.left\.x\[0\] must be a length .*bare number"),
+    ("left: {x: [-1 nm, 0 nm]}", "left: {y: [-1 nm, 0 nm]}", r"basins\.left\.y must be the name of a coordinate"),
+    ("left: {x: [-1 nm, 0 nm]}", "left: {x: [0 nm, -1 nm]}", r"basins\.left\.x must be \[lower, upper\]"),
+    ("seed: 5\n", "seed: 5\nseed: 6\n", r"protocol\.yaml: is not valid YAML at line 6.*duplicate key 'seed'"),
+    ("title: test double well", "title: [unclosed", r"protocol\.yaml: is not valid YAML at line \d+"),
+    ("seed: 5", "seed: !!python/object:os.system 5", r"protocol\.yaml: is not valid YAML"),
+]
+
+
+@pytest.mark.parametrize("old, new, message", BAD)
+def test_bad_input_is_one_clear_line(write_protocol, double_well_text, old, new, message):
+    path = write_protocol(edit(double_well_text, old, new))
+    with pytest.raises(ProtocolError, match=message) as info:
+        load_protocol(path)
+    assert "\n" not in str(info.value)
+
+
+BAD_EXTRA = [
+    ("umbrella:\n  x: {centres: {from: 0 nm, to: 0.1 nm, count: 1}, spring: 1 kJ/mol/nm**2}\n",
+     r"umbrella\.x\.centres\.count must be a whole number of at least 2"),
+    ("umbrella:\n  x: {centres: [0 nm], spring: -1 kJ/mol/nm**2}\n", r"umbrella\.x\.spring must be positive"),
+    ("umbrella:\n  x: {centres: [0 nm], spring: 1 kJ/mol/rad**2}\n", r"umbrella\.x\.spring must be an energy per length squared"),
+    ("umbrella:\n  x: {centres: [0 nm, 1 nm], spring: [1 kJ/mol/nm**2]}\n", r"umbrella\.x\.spring must be one spring constant, or a list of 2"),
+    ("umbrella:\n  y: {centres: [0 nm], spring: 1 kJ/mol/nm**2}\n", r"umbrella\.y must be the name of a coordinate"),
+    ("temperatures: [300 K, 290 K]\n", r"temperatures must be a strictly increasing list"),
+    ("temperatures: [300 K]\n", r"temperatures must be a list of at least 2 items"),
+    ("temperatures: [300 K, -3 K]\n", r"temperatures\[1\] must be positive"),
+    ("exchange: {attempts: 0}\n", r"exchange\.attempts must be a whole number of at least 1"),
+    ("exchange: {scheme: random}\n", r"exchange\.scheme must be one of 'neighbours', 'all_pairs'"),
+    ("walls:\n  - {coordinate: x, spring: 1 kJ/mol/nm**2}\n", r"walls\[0\] must be a wall with a 'lower' or an 'upper'"),
+    ("walls:\n  - {coordinate: x, lower: 1 nm, upper: 0 nm, spring: 1 kJ/mol/nm**2}\n", r"walls\[0\]\.upper must be above 'lower'"),
+    ("analysis: {energy_unit: eV}\n", r"analysis\.energy_unit must be one of"),
+]
+
+
+@pytest.mark.parametrize("extra, message", BAD_EXTRA)
+def test_bad_sampling_input(write_protocol, double_well_text, extra, message):
+    with pytest.raises(ProtocolError, match=message):
+        load_protocol(write_protocol(double_well_text + extra))
+
+
+def test_missing_file_is_input_error(tmp_path):
+    with pytest.raises(InputError, match=r"nowhere\.yaml: protocol file not found"):
+        load_protocol(tmp_path / "nowhere.yaml")
+
+
+def test_required_key_missing(write_protocol, double_well_text):
+    with pytest.raises(ProtocolError, match=r"protocol\.yaml: seed is required but missing"):
+        load_protocol(write_protocol(edit(double_well_text, "seed: 5\n", "")))
+
+
+def test_top_level_must_be_mapping(tmp_path):
+    with pytest.raises(ProtocolError, match=r"p\.yaml: \(top level\) must be a mapping"):
+        parse_protocol("- just\n- a list\n", tmp_path / "p.yaml")

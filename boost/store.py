@@ -76,7 +76,7 @@ class Ledger:
         self.coordinate_names = tuple(coordinate_names)
         self.connection = sqlite3.connect(self.path)
         self.connection.execute("PRAGMA journal_mode=WAL")
-        self.connection.execute("PRAGMA synchronous=FULL")
+        self.connection.execute("PRAGMA synchronous=NORMAL")
 
     def create(self, conditions, metadata):
         columns = "".join(f', "{name}" REAL' for name in self.coordinate_names)

@@ -16,10 +16,14 @@ Physics options, each accepted only where it means something: ``forcefield``,
 ``implicit_solvent`` and ``water_box`` (pdb, peptide); ``nonbonded`` and
 ``constraints`` (all but model and serialized); ``implicit_solvent`` also for amber
 and charmm. Paths are relative to the file the spec is written in; a force field
-that is not a file there is taken as one of OpenMM's bundled force fields.
+that is not a file there is taken as one of OpenMM's bundled force fields. Defaults:
+forcefield amber14-all.xml; peptide phi and psi 180 deg; water_box padding 1 nm,
+tip3p, no salt (the water model's force field file is added when the listed ones lack
+water); nonbonded pme with a box, else no_cutoff, cutoff 1 nm; constraints h_bonds.
 """
 
 import os
+import random
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -242,7 +246,7 @@ def _from_peptide(spec, src, base_dir):
     entries = _forcefield_entries(spec, base_dir, implicit=False)
     _load_forcefield(ff_node, entries)  # a bad file name is reported here, not by the builder
     from . import builder
-    with _template_errors(ff_node, entries):
+    with _template_errors(ff_node, entries), _fixed_random():
         try:
             topology, positions = builder.build_peptide(
                 sequence, phi=phi, psi=psi, forcefield_files=tuple(name for _, name in entries))
@@ -279,7 +283,7 @@ def _from_amber(spec, src, base_dir):
     if inpcrd.boxVectors is not None:
         topology.setPeriodicBoxVectors(inpcrd.boxVectors)
     with _openmm_errors(spec, src):
-        system = prmtop.createSystem(**_file_options(spec, topology, implicit=True))
+        system = prmtop.createSystem(**_create_options(spec, topology, implicit=True))
     positions = inpcrd.getPositions(asNumpy=True).value_in_unit(unit.nanometer)
     return system, topology, positions, inpcrd_node
 
@@ -301,7 +305,7 @@ def _from_gromacs(spec, src, base_dir):
     top = _read(top_node, base_dir, "a GROMACS top file",
                 lambda path: app.GromacsTopFile(path, **options))
     with _openmm_errors(spec, src):
-        system = top.createSystem(**_file_options(spec, top.topology))
+        system = top.createSystem(**_create_options(spec, top.topology))
     positions = gro.getPositions(asNumpy=True).value_in_unit(unit.nanometer)
     return system, top.topology, positions, gro_node
 
@@ -325,7 +329,7 @@ def _from_charmm(spec, src, base_dir):
         psf.setBox(*(length * unit.nanometer for length in _box_lengths(src.get("box"))))
     topology = psf.topology
     with _openmm_errors(spec, src):
-        system = psf.createSystem(params, **_file_options(spec, topology, implicit=True))
+        system = psf.createSystem(params, **_create_options(spec, topology, implicit=True))
     return system, topology, positions, coord_node
 
 
@@ -406,6 +410,19 @@ def _template_errors(ff_node, entries):
 
 
 @contextmanager
+def _fixed_random(seed=20260101):
+    """Seed Python's global RNG for one call, then restore it: OpenMM's Modeller draws
+    from it (hydrogen start positions, which waters become ions), and a spec must build
+    the same system every time."""
+    state = random.getstate()
+    random.seed(seed)
+    try:
+        yield
+    finally:
+        random.setstate(state)
+
+
+@contextmanager
 def _openmm_errors(spec, src):
     """Turn OpenMM's createSystem failures on file-based sources into one line."""
     try:
@@ -431,11 +448,8 @@ def _parametrize(spec, topology, positions, base_dir):
                                 "implicit_solvent: choose one kind of solvent.")
         forcefield, topology, positions = _add_water(
             spec.get("water_box"), ff_node, entries, forcefield, topology, positions)
-    method, cutoff = _nonbonded(spec.get("nonbonded", {}), _box_array(topology))
-    constraints = _constraints(spec)
     with _template_errors(ff_node, entries):
-        system = forcefield.createSystem(topology, nonbondedMethod=method,
-                                         nonbondedCutoff=cutoff, constraints=constraints)
+        system = forcefield.createSystem(topology, **_create_options(spec, topology))
     return system, topology, positions
 
 
@@ -451,7 +465,7 @@ def _add_water(node, ff_node, entries, forcefield, topology, positions):
         entries.append((node.get("water_model", model).place, name))
         forcefield = _load_forcefield(ff_node, entries)
     modeller = app.Modeller(topology, np.asarray(positions) * unit.nanometer)
-    with _template_errors(ff_node, entries):
+    with _template_errors(ff_node, entries), _fixed_random():
         modeller.addSolvent(forcefield, model=model, padding=padding * unit.nanometer,
                             ionicStrength=ionic * unit.molar)
     solvated = modeller.getPositions().value_in_unit(unit.nanometer)
@@ -488,14 +502,15 @@ def _nonbonded(node, box):
     cutoff = cutoff_node.quantity("length", positive=True)
     if box is not None and cutoff > 0.5 * box.diagonal().min():
         raise ProtocolError(f"{cutoff_node.place} must be at most half the box width "
-                            f"({0.5 * box.diagonal().min():.4g} nm). Got {cutoff:.4g} nm instead.")
+                            f"({0.5 * box.diagonal().min():.4g} nm). Got {cutoff:.4g} nm instead; "
+                            "give a shorter cutoff, a bigger box or method 'no_cutoff'.")
     if method == "pme":
         return app.PME, cutoff * unit.nanometer
     return (app.CutoffPeriodic if box is not None else app.CutoffNonPeriodic), cutoff * unit.nanometer
 
 
-def _file_options(spec, topology, *, implicit=False):
-    """createSystem keywords shared by the Amber, GROMACS and CHARMM readers."""
+def _create_options(spec, topology, *, implicit=False):
+    """createSystem keywords: nonbonded method and cutoff, constraints, implicit solvent."""
     method, cutoff = _nonbonded(spec.get("nonbonded", {}), _box_array(topology))
     options = {"nonbondedMethod": method, "nonbondedCutoff": cutoff,
                "constraints": _constraints(spec)}
@@ -535,7 +550,9 @@ def _finish(system, topology, positions, title, coordinates_node):
     box = None
     if system.usesPeriodicBoundaryConditions():
         vectors = system.getDefaultPeriodicBoxVectors()
-        topology.setPeriodicBoxVectors(vectors)
         box = _box_array_of(vectors)
+    else:
+        vectors = None  # a box the system does not use would only mislead later readers
+    topology.setPeriodicBoxVectors(vectors)
     return BuiltSystem(system=system, topology=topology, positions=positions,
                        box_vectors=box, title=title)

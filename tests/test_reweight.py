@@ -260,12 +260,14 @@ def test_transient_is_detected_as_equilibration():
 
 
 def test_constant_series_is_uncorrelated():
+    # our convention (documented in decorrelate): no fluctuation, so g = 1, keep all
     result = decorrelate(np.full(50, 3.0))
     assert (result.t0, result.g, result.n_effective) == (0, 1.0, 50.0)
     np.testing.assert_array_equal(result.indices, np.arange(50))
 
 
 def test_short_correlated_series_warns():
+    # source: exact — ρ = 0.99 gives g = 199, so 200 samples hold about one independent one
     with pytest.warns(ConvergenceWarning, match="effectively uncorrelated"):
         decorrelate(_ar1(0.99, 200, seed=3))
 

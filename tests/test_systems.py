@@ -8,6 +8,7 @@ numpy in the format's own documented functional form.
 """
 
 import math
+import random
 import textwrap
 
 import mdtraj
@@ -60,6 +61,9 @@ def alanine():
     return systems.load_system(_spec("alanine-vacuum"), ".")
 
 
+PEPTIDE = {"sequence": ["ACE", "ALA", "NME"]}
+
+
 def _write_alanine_pdb(built, path):
     with open(path, "w") as handle:
         app.PDBFile.writeFile(built.topology, built.positions * unit.nanometer, handle)
@@ -106,6 +110,26 @@ def test_alanine_is_built_at_the_requested_angles(alanine):
     psi = np.degrees(mdtraj.compute_psi(traj)[1][0, 0])
     assert phi == pytest.approx(-80.0, abs=1e-4)
     assert psi == pytest.approx(75.0, abs=1e-4)
+
+
+def test_peptide_sequence_as_text_and_angles_as_lists(alanine):
+    spec = {"peptide": {"sequence": "ACE ALA NME", "phi": ["-80 deg"], "psi": ["75 deg"]},
+            "title": "same alanine"}
+    built = systems.build_system(_spec(spec), ".")
+    assert built.title == "same alanine"
+    np.testing.assert_array_equal(built.positions, alanine.positions)
+
+
+def test_solvated_system_with_ions_is_reproducible():
+    # Modeller places hydrogens and ions at random; a spec must still build one system
+    spec = {"peptide": PEPTIDE, "water_box": {"padding": "0.6 nm", "ionic_strength": "1 molar"},
+            "nonbonded": {"cutoff": "0.6 nm"}}
+    random.seed(1)
+    first = systems.build_system(_spec(spec), ".")
+    random.seed(2)  # the caller's random state must not matter
+    second = systems.build_system(_spec(spec), ".")
+    assert {"NA", "CL"} <= {residue.name for residue in first.topology.residues()}
+    np.testing.assert_array_equal(first.positions, second.positions)
 
 
 def test_obc2_has_a_generalized_born_force():
@@ -199,10 +223,11 @@ def _write_tri_pdb(path):
 
 
 def test_local_forcefield_file_relative_to_the_spec(tmp_path):
-    _write(tmp_path / "ff" / "tri.xml", TRI_FORCEFIELD)
-    _write_tri_pdb(tmp_path / "tri.pdb")
-    _write(tmp_path / "sys.yaml", "pdb: tri.pdb\nforcefield: [ff/tri.xml]\nconstraints: none\n")
-    built = systems.load_system(_spec("sys.yaml"), tmp_path)
+    # the spec file sits in sub/, so its paths start there, not beside the protocol
+    _write(tmp_path / "sub" / "ff" / "tri.xml", TRI_FORCEFIELD)
+    _write_tri_pdb(tmp_path / "sub" / "tri.pdb")
+    _write(tmp_path / "sub" / "sys.yaml", "pdb: tri.pdb\nforcefield: [ff/tri.xml]\nconstraints: none\n")
+    built = systems.load_system(_spec("sub/sys.yaml"), tmp_path)
     # source: exact; OpenMM's XML force fields use E = k/2 (r - r0)^2 and k/2 (θ - θ0)^2
     # (OpenMM user guide, HarmonicBondForce / HarmonicAngleForce)
     expected = sum(0.5 * 259408.0 * (r - 0.1526) ** 2 for r in _bond_lengths(TRI_XYZ))
@@ -452,6 +477,9 @@ def test_missing_system_file_names_the_key_and_path(tmp_path):
         systems.load_system(_spec("sub/nothere.yaml"), tmp_path)
     with pytest.raises(InputError, match=r"system names .* no bundled system is called 'no-such'"):
         systems.load_system(_spec("no-such"), tmp_path)
+    (tmp_path / "folder.yaml").mkdir()
+    with pytest.raises(InputError, match=r"system names .*folder\.yaml, which is a folder"):
+        systems.load_system(_spec("folder.yaml"), tmp_path)
 
 
 def test_missing_structure_file_names_the_key_and_path(tmp_path):
@@ -535,13 +563,12 @@ def test_unknown_force_field_file(tmp_path):
      r"system\.nonbonded\.cutoff must be a length"),
     ({"peptide": {"sequence": ["ACE", "ALA", "NME"]}, "water_box": {"ionic_strength": "0.1 nm"}},
      r"system\.water_box\.ionic_strength must be a concentration"),
+    ({"peptide": {"sequence": ["ACE", "ALA", "NME"], "phi": ["-80 deg", "60 deg"]}},
+     r"system\.peptide\.phi must be one angle or a list of 1 angle,"),
 ])
-def test_bad_units(spec, key):
+def test_bad_units_and_angle_counts(spec, key):
     with pytest.raises(ProtocolError, match=key):
         systems.build_system(_spec(spec), ".")
-
-
-PEPTIDE = {"sequence": ["ACE", "ALA", "NME"]}
 
 
 @pytest.mark.parametrize("extra, key", [

@@ -1,0 +1,116 @@
+"""Walkers on OpenMM: reduced potentials from numpy equal OpenMM's energies."""
+
+import math
+
+import numpy as np
+import openmm
+import pytest
+from openmm import unit
+
+from boost.conditions import Condition, compute_reduced_potentials
+from boost.coordinates import compute_coordinate_values_many
+from boost.engine import BIAS_GROUP, PlatformChoice, Walker, derive_seeds, prepare_system
+from boost.protocol import load_protocol, resolve_coordinates
+from boost.systems import load_system
+from boost.units import beta
+
+ALANINE = """\
+protocol: 1
+system: alanine-vacuum
+seed: 4
+temperature: 300 K
+timestep: 2 fs
+coordinates:
+  phi: {dihedral: ["resid 0 and name C", "resid 1 and name N", "resid 1 and name CA", "resid 1 and name C"]}
+  psi: {dihedral: ["resid 1 and name N", "resid 1 and name CA", "resid 1 and name C", "resid 2 and name N"]}
+  d: {distance: [{centre: "resid 0"}, {centre: "resid 2"}]}
+walls:
+  - {coordinate: d, upper: 0.5 nm, spring: 1000 kJ/mol/nm**2}
+umbrella:
+  phi: {centres: [-170 deg, 175 deg], spring: 150 kJ/mol/rad**2}
+  psi: {centres: [0 deg], spring: 50 kJ/mol/rad**2}
+temperatures: [300 K, 400 K]
+run: {production: 1 ps}
+"""
+
+
+@pytest.fixture
+def alanine(write_protocol):
+    protocol = load_protocol(write_protocol(ALANINE))
+    built = load_system(protocol.system, protocol.base_dir)
+    coordinates = resolve_coordinates(protocol, built.topology)
+    system, names = prepare_system(built, protocol, coordinates)
+    return protocol, built, coordinates, system, names
+
+
+def _total_energy(walker):
+    return walker.context.getState(getEnergy=True).getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole)
+
+
+def test_reduced_potentials_match_openmm_in_every_condition(alanine):
+    # Cross-check of two implementations: numpy umbrella energies on coordinate values
+    # (conditions.py) vs OpenMM's CustomCVForce in a context set to each condition; to 1e-6 kJ/mol.
+    protocol, built, coordinates, system, names = alanine
+    conditions = [Condition(0, 300.0, (math.radians(-170), 0.0), (150.0, 50.0)),
+                  Condition(1, 400.0, (math.radians(175), 0.3), (150.0, 80.0))]
+    walker = Walker(0, system, names, built.positions, None, conditions[0], timestep=0.002, friction=1.0,
+                    platform=PlatformChoice("Reference", {}), seed=7)
+    walker.draw_velocities(3)
+    walker.step(200)
+    observation = walker.observe()
+    values = compute_coordinate_values_many(list(coordinates.values()), observation.positions, built.masses)
+    columns = [list(coordinates).index(n) for n in names]
+    u_kr = compute_reduced_potentials(conditions, [observation.potential], values[:, columns], [True, True])
+    for condition in conditions:
+        walker.apply(condition)
+        total = _total_energy(walker)
+        assert u_kr[condition.index, 0] / beta(condition.temperature) == pytest.approx(total, abs=1e-6)
+
+
+def test_reported_potential_excludes_umbrellas_but_includes_walls(alanine):
+    protocol, built, coordinates, system, names = alanine
+    groups = {f.getForceGroup() for f in system.getForces() if isinstance(f, openmm.CustomCVForce)}
+    assert groups == {0, BIAS_GROUP}     # the wall in the physical group, umbrellas in the bias group
+    condition = Condition(0, 300.0, (0.0, 0.0), (0.0, 0.0))   # springs off: only walls remain
+    walker = Walker(0, system, names, built.positions, None, condition, timestep=0.002, friction=1.0,
+                    platform=PlatformChoice("Reference", {}), seed=7)
+    assert walker.observe().potential == pytest.approx(_total_energy(walker), abs=1e-9)
+
+
+def test_temperature_change_rescales_velocities(alanine):
+    # common practice: velocities scale by sqrt(T_new / T_old) on a temperature swap
+    protocol, built, coordinates, system, names = alanine
+    cold = Condition(0, 300.0, (0.0, 0.0), (150.0, 50.0))
+    hot = Condition(1, 400.0, (0.0, 0.0), (150.0, 50.0))
+    walker = Walker(0, system, names, built.positions, None, cold, timestep=0.002, friction=1.0,
+                    platform=PlatformChoice("Reference", {}), seed=7)
+    walker.draw_velocities(5)
+    before = walker.context.getState(getVelocities=True).getVelocities(asNumpy=True)._value
+    walker.apply(hot)
+    after = walker.context.getState(getVelocities=True).getVelocities(asNumpy=True)._value
+    assert after == pytest.approx(before * math.sqrt(400 / 300), rel=1e-12)
+    assert walker.integrator.getTemperature().value_in_unit(unit.kelvin) == pytest.approx(400)
+
+
+def test_checkpoint_round_trip_is_bit_for_bit(alanine):
+    # OpenMM checkpoints continue bit-for-bit on the Reference platform (DESIGN.md, measured)
+    protocol, built, coordinates, system, names = alanine
+    condition = Condition(0, 300.0, (0.0, 0.0), (150.0, 50.0))
+    make = lambda: Walker(0, system, names, built.positions, None, condition, timestep=0.002, friction=1.0,
+                          platform=PlatformChoice("Reference", {}), seed=9)
+    first = make()
+    first.draw_velocities(1)
+    first.step(50)
+    saved = first.checkpoint()
+    first.step(100)
+    second = make()
+    second.restore(saved, condition)
+    second.step(100)
+    assert np.array_equal(first.observe().positions, second.observe().positions)
+
+
+def test_seeds_are_positive_distinct_and_reproducible():
+    seeds, swap = derive_seeds(2026, 8)
+    assert len(set(seeds + [swap])) == 9 and min(seeds) > 0
+    assert derive_seeds(2026, 8) == (seeds, swap)
+    assert derive_seeds(2027, 8)[0] != seeds

@@ -1,0 +1,107 @@
+"""A whole single run through the scheduler: ledger, frames, provenance, physics."""
+
+import json
+import sqlite3
+
+import mdtraj
+import numpy as np
+import pytest
+
+from boost.analysis import analyse_run
+from boost.exceptions import RunFolderError
+from boost.models import read_model
+from boost.protocol import load_protocol
+from boost.scheduler import run_protocol
+from boost.spec import Node
+from boost.store import read_ledger
+
+LOW_WELL = """\
+protocol: 1
+title: low double well
+system:
+  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}
+seed: SEED
+temperature: 300 K
+timestep: 5 fs
+friction: 10/ps
+coordinates:
+  x: {position: 0, axis: x}
+run:
+  cycle: 0.5 ps
+  equilibration: 10 ps
+  production: 4 ns
+basins:
+  left: {x: [-1 nm, 0 nm]}
+  right: {x: [0 nm, 1 nm]}
+"""
+
+
+@pytest.fixture
+def small_run(tmp_path, write_protocol, double_well_text):
+    protocol = load_protocol(write_protocol(double_well_text))
+    folder = run_protocol(protocol, tmp_path / "run", progress=False)
+    return protocol, folder
+
+
+def test_ledger_holds_every_cycle_with_units(small_run):
+    protocol, folder = small_run
+    data = read_ledger(folder)
+    assert len(data.cycle_t) == protocol.run.n_cycles == 60
+    assert data.production_t.sum() == 50
+    assert data.time_t[-1] == pytest.approx(6.0)          # ps
+    assert data.condition_rt.shape == (1, 60)
+    assert np.all(np.isfinite(data.potential_rt))
+    # reduced potential of the unbiased condition is βU (β at 300 K; R = 8.314462618e-3 kJ/mol/K, CODATA)
+    assert data.u_krt[0, 0] == pytest.approx(data.potential_rt[0] / (8.314462618e-3 * 300))
+
+
+def test_frames_open_with_mdtraj_and_match_the_ledger(small_run):
+    # reference library: mdtraj reads the DCD frames; their x equals the ledger's coordinate
+    protocol, folder = small_run
+    trajectory = mdtraj.load(str(folder / "frames" / "walker-000.dcd"), top=str(folder / "topology.pdb"))
+    assert trajectory.n_frames == 6
+    with sqlite3.connect(folder / "ledger.sqlite") as connection:
+        cycles = [c for (c,) in connection.execute("SELECT cycle FROM frames ORDER BY frame")]
+    data = read_ledger(folder)
+    # DCD stores float32 in Å: agreement to ~1e-6 nm
+    assert trajectory.xyz[:, 0, 0] == pytest.approx(data.values_rtc[0, cycles, 0], abs=2e-6)
+
+
+def test_provenance_and_protocol_copy(small_run):
+    protocol, folder = small_run
+    assert (folder / "protocol.yaml").read_text() == protocol.text
+    provenance = json.loads((folder / "provenance.json").read_text())
+    assert provenance["protocol_sha256"] == protocol.sha256
+    assert provenance["seed"] == 5 and provenance["versions"]["openmm"]
+    assert provenance["platform"] in ("Reference", "CPU")
+
+
+def test_folder_of_another_protocol_is_refused_and_left_alone(small_run, write_protocol, double_well_text):
+    protocol, folder = small_run
+    before = {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()}
+    other = load_protocol(write_protocol(double_well_text.replace("seed: 5", "seed: 6"), "other.yaml"))
+    with pytest.raises(RunFolderError, match="belongs to another protocol"):
+        run_protocol(other, folder, progress=False)
+    assert {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()} == before
+
+
+def test_same_seed_same_ledger(tmp_path, write_protocol, double_well_text):
+    # Reference platform with fixed seeds is deterministic (DESIGN.md, measured)
+    protocol = load_protocol(write_protocol(double_well_text.replace("production: 5 ps", "production: 2 ps")))
+    a = read_ledger(run_protocol(protocol, tmp_path / "a", progress=False))
+    b = read_ledger(run_protocol(protocol, tmp_path / "b", progress=False))
+    assert np.array_equal(a.u_krt, b.u_krt) and np.array_equal(a.values_rtc, b.values_rtc)
+
+
+def test_unbiased_low_barrier_populations_match_quadrature(tmp_path, write_protocol):
+    # exact: basin populations of exp(-U/kT) by quadrature (scipy, via boost.models).
+    # Plain MD crosses a ~2 kT barrier often, so a short run must agree within a few
+    # reported standard errors (and within 0.05 absolute).
+    protocol = load_protocol(write_protocol(LOW_WELL.replace("SEED", "17")))
+    analysis = analyse_run(run_protocol(protocol, tmp_path / "run", progress=False))
+    model = read_model(Node(protocol.system.value["model"], "test", "model"))
+    exact = model.compute_exact_populations(300.0, {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}})
+    basins = analysis.basins
+    for i, name in enumerate(basins.names):
+        error = abs(basins.populations[i] - exact[name])
+        assert error < 4 * basins.d_populations[i] and error < 0.05, (name, basins.populations[i], exact[name])

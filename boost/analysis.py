@@ -210,10 +210,22 @@ def _profiles(mbar, u_n, values_nc, data, protocol, scale):
         values = values_nc[:, columns]
         edges = [_edges(protocol, data, name, values[:, i]) for i, name in enumerate(grid)]
         profile = mbar.compute_pmf(u_n, values, edges)
+        _warn_sparse_bins(grid, profile.counts)
         centres = tuple(np.degrees(c) if data.metadata["units"][name] == "rad" else c
                         for c, name in zip(profile.centres, grid))
         profiles.append(ProfileResult(grid, centres, profile.f * scale, profile.df * scale, profile.counts))
     return profiles
+
+
+def _warn_sparse_bins(grid, counts):
+    """Warn when bins inside the sampled range are empty or nearly so: bins too fine for the data."""
+    populated = np.flatnonzero(counts.ravel() > 0)
+    inside = counts.ravel()[populated.min(): populated.max() + 1] if len(grid) == 1 else counts.ravel()[populated]
+    empty = int(np.sum(inside == 0))
+    if empty or np.median(inside) < 10:
+        warnings.warn(f"PMF bins along {', '.join(grid)} are finer than the data supports ({empty} empty "
+                      f"bin(s) inside the sampled range, median {np.median(inside):.0f} samples per bin); "
+                      "use fewer bins (analysis.bins) or run longer.", ConvergenceWarning, stacklevel=3)
 
 
 def basin_masks(protocol, coordinate_names, periodic, values_nc):

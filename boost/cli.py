@@ -135,3 +135,7 @@ def analyze(run_folder, temperature, energy_unit, output):
     out = write_report(analysis, output)
     click.echo(format_summary(analysis))
     click.echo(f"tables and plots: {out}")
+
+
+if __name__ == "__main__":
+    main()

@@ -25,6 +25,8 @@ _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _RESERVED = {"cycle", "walker", "condition", "potential", "volume", "reduced", "time", "production"}
 _POINT_COUNT = {"distance": 2, "angle": 3, "dihedral": 4, "position": 1}
 _AXES = {"x": 0, "y": 1, "z": 2}
+_RANGES = {"dihedral": (-math.pi, math.pi, "-180 deg to 180 deg"), "angle": (0.0, math.pi, "0 deg to 180 deg"),
+           "distance": (0.0, math.inf, "0 nm or more")}
 TOP_KEYS = ("protocol", "title", "system", "seed", "temperature", "timestep", "friction",
             "pressure", "platform", "coordinates", "walls", "umbrella", "temperatures",
             "exchange", "run", "basins", "analysis")
@@ -320,10 +322,9 @@ def _read_centres(node, coordinate):
         if stop <= start:
             node.get("to").fail("above 'from'")
         centres = tuple(np.linspace(start, stop, count).tolist())
-    if coordinate.periodic:
-        outside = [c for c in centres if not -math.pi - 1e-9 <= c <= math.pi + 1e-9]
-        if outside:
-            node.fail("centres within -180 deg and 180 deg for a dihedral")
+    low, high, what = _RANGES.get(coordinate.kind, (-math.inf, math.inf, ""))
+    if any(not low - 1e-9 <= c <= high + 1e-9 for c in centres):
+        node.fail(f"centres within the range of {coordinate.name}, a {coordinate.kind} ({what})")
     if len(set(centres)) != len(centres):
         node.fail("distinct window centres")
     return centres
@@ -437,8 +438,30 @@ def _read_basins(node, coordinates):
             intervals[coordinate.name] = _read_interval(interval, coordinate)
         if not intervals:
             entry.fail("a mapping of coordinate names to [lower, upper] intervals")
+        for other, other_intervals in basins.items():
+            if _boxes_overlap(intervals, other_intervals, coordinates):
+                entry.fail(f"disjoint from basin '{other}' (they overlap)", got=entry.value)
         basins[name] = intervals
     return basins
+
+
+def _segments(interval, periodic):
+    lower, upper = interval
+    if periodic and lower > upper:                   # wraps through ±180 deg
+        return [(lower, math.pi), (-math.pi, upper)]
+    return [(lower, upper)]
+
+
+def _boxes_overlap(a, b, coordinates):
+    """Whether two basins given on the same coordinates share any region."""
+    if set(a) != set(b):
+        return False                                 # cannot tell without samples; analysis checks
+    for name in a:
+        periodic = coordinates[name].periodic
+        if not any(lo1 < hi2 and lo2 < hi1 for lo1, hi1 in _segments(a[name], periodic)
+                   for lo2, hi2 in _segments(b[name], periodic)):
+            return False
+    return True
 
 
 def _read_analysis(node, coordinates):

@@ -111,7 +111,37 @@ BAD_EXTRA = [
     ("walls:\n  - {coordinate: x, spring: 1 kJ/mol/nm**2}\n", r"walls\[0\] must be a wall with a 'lower' or an 'upper'"),
     ("walls:\n  - {coordinate: x, lower: 1 nm, upper: 0 nm, spring: 1 kJ/mol/nm**2}\n", r"walls\[0\]\.upper must be above 'lower'"),
     ("analysis: {energy_unit: eV}\n", r"analysis\.energy_unit must be one of"),
+    ("umbrella:\n  d: {centres: [-0.1 nm, 0.2 nm], spring: 1 kJ/mol/nm**2}\ncoordinates:\n  x: {position: 0, axis: x}\n",
+     r"duplicate key"),
 ]
+
+BAD_COORDINATES = [
+    ("d: {distance: [0, 0]}", "umbrella:\n  d: {centres: [-0.1 nm, 0.2 nm], spring: 1 kJ/mol/nm**2}\n",
+     r"umbrella\.d\.centres must be centres within the range of d, a distance \(0 nm or more\)"),
+    ("a: {angle: [0, 0, 0]}", "umbrella:\n  a: {centres: [10 deg, 190 deg], spring: 1 kJ/mol/rad**2}\n",
+     r"umbrella\.a\.centres must be centres within the range of a, a angle"),
+    ("p: {dihedral: [0, 0, 0, 0]}", "umbrella:\n  p: {centres: [10 deg, 200 deg], spring: 1 kJ/mol/rad**2}\n",
+     r"umbrella\.p\.centres must be centres within the range of p, a dihedral"),
+    ("p: {dihedral: [0, 0, 0, 0]}", "basins:\n  one: {p: [-180 deg, 0 deg]}\n  two: {p: [-10 deg, 90 deg]}\n",
+     r"basins\.two must be disjoint from basin 'one'"),
+    ("p: {dihedral: [0, 0, 0, 0]}", "basins:\n  one: {p: [150 deg, -150 deg]}\n  two: {p: [-160 deg, 0 deg]}\n",
+     r"basins\.two must be disjoint from basin 'one'"),
+
+]
+
+
+@pytest.mark.parametrize("coordinate, extra, message", BAD_COORDINATES)
+def test_bad_windows_and_basins(write_protocol, double_well_text, coordinate, extra, message):
+    text = double_well_text.replace("x: {position: 0, axis: x}", "x: {position: 0, axis: x}\n  " + coordinate)
+    text = text[:text.index("basins:")] + extra
+    with pytest.raises(ProtocolError, match=message):
+        load_protocol(write_protocol(text))
+
+
+def test_disjoint_wrapped_basins_are_fine(write_protocol, double_well_text):
+    text = double_well_text.replace("x: {position: 0, axis: x}", "x: {position: 0, axis: x}\n  p: {dihedral: [0, 0, 0, 0]}")
+    text = text[:text.index("basins:")] + "basins:\n  one: {p: [150 deg, -150 deg]}\n  two: {p: [-150 deg, 150 deg]}\n"
+    assert set(load_protocol(write_protocol(text)).basins) == {"one", "two"}
 
 
 @pytest.mark.parametrize("extra, message", BAD_EXTRA)

@@ -183,6 +183,12 @@ def parse_protocol(text, path):
     pressure = None
     if root.has("pressure"):
         pressure = root.get("pressure").quantity("pressure", positive=True)
+    umbrella = _read_umbrella(root.get("umbrella", {}), coordinates)
+    temperatures = _read_temperatures(root.get("temperatures", None), temperature)
+    exchange = _read_exchange(root.get("exchange", None))
+    if exchange is not None and len(temperatures) == 1 and math.prod(len(a.centres) for a in umbrella) < 2:
+        root.get("exchange").fail("used with a ladder: a 'temperatures' list or 'umbrella' windows "
+                                  "along a coordinate, which this protocol lacks")
     return Protocol(
         path=path, text=text, sha256=hashlib.sha256(text.encode()).hexdigest(),
         title=_read_title(root), seed=root.get("seed").integer(minimum=0),
@@ -190,9 +196,7 @@ def parse_protocol(text, path):
         friction=root.get("friction", "1/ps").quantity("rate", positive=True),
         pressure=pressure, system=root.get("system"), coordinates=coordinates,
         walls=_read_walls(root.get("walls", []), coordinates),
-        umbrella=_read_umbrella(root.get("umbrella", {}), coordinates),
-        temperatures=_read_temperatures(root.get("temperatures", None), temperature),
-        exchange=_read_exchange(root.get("exchange", None)),
+        umbrella=umbrella, temperatures=temperatures, exchange=exchange,
         platform=_read_platform(root.get("platform", {})),
         run=_read_run(root.get("run"), timestep),
         basins=_read_basins(root.get("basins", {}), coordinates),
@@ -304,6 +308,8 @@ def _read_umbrella(node, coordinates):
         entry.mapping(allowed=("centres", "spring"), required=("centres", "spring"))
         centres = _read_centres(entry.get("centres"), coordinate)
         springs = _read_springs(entry.get("spring"), coordinate, len(centres))
+        if len(set(zip(centres, springs))) != len(centres):
+            entry.fail("windows that differ in centre or spring (two are the same)", got=entry.value)
         axes.append(UmbrellaAxis(coordinate.name, centres, springs))
     if len(axes) > 2:
         node.fail("windows along one coordinate or a grid over two")
@@ -325,8 +331,6 @@ def _read_centres(node, coordinate):
     low, high, what = _RANGES.get(coordinate.kind, (-math.inf, math.inf, ""))
     if any(not low - 1e-9 <= c <= high + 1e-9 for c in centres):
         node.fail(f"centres within the range of {coordinate.name}, a {coordinate.kind} ({what})")
-    if len(set(centres)) != len(centres):
-        node.fail("distinct window centres")
     return centres
 
 

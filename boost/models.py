@@ -1,8 +1,8 @@
-"""Analytic model potentials as one-particle OpenMM systems, with exact references.
+"""Analytic model potentials as OpenMM systems of independent particles, with exact references.
 
-Each model is one particle (a carbon-like atom named ``P`` in residue ``MDL``) in an
-external potential U(x, y, z), built as one ``CustomExternalForce``: no constraints, no
-periodic box. Everything is in OpenMM's MD units: positions in nm, energies in kJ/mol,
+Each particle (a carbon-like atom named ``P`` in a residue ``MDL`` of its own) moves in
+an external potential U(x, y, z), built as one ``CustomExternalForce``: no constraints,
+no periodic box, no centre-of-mass motion remover. Everything is in OpenMM's MD units: positions in nm, energies in kJ/mol,
 masses in amu, temperatures in K.
 
 The exact references are integrals of the Boltzmann factor exp(-U/kT) by adaptive
@@ -12,8 +12,10 @@ outside which exp(-[U - U_min]/kT) < exp(-40); see each model's ``compute_domain
 
 Models: ``double_well`` (a quartic double well along x, :class:`DoubleWell`) and
 ``muller_brown`` (the surface of Müller & Brown, Theor. Chim. Acta 53, 75 (1979), in x
-and y, :class:`MullerBrown`); both restrain the remaining directions with a harmonic
-transverse_spring.
+and y, :class:`MullerBrown`), one particle each, restrain the remaining directions with
+a harmonic transverse_spring; ``harmonic_well`` (:class:`HarmonicWell`) holds N
+independent particles in one isotropic 3-D harmonic well, whose free energy is known in
+closed form.
 """
 
 import math
@@ -26,7 +28,7 @@ from scipy import integrate, optimize
 
 from .units import MOLAR_GAS_CONSTANT
 
-MODEL_NAMES = ("double_well", "muller_brown")
+MODEL_NAMES = ("double_well", "muller_brown", "harmonic_well")
 
 #: Boltzmann factors below exp(-CUTOFF_KT) relative to the global minimum are neglected.
 CUTOFF_KT = 40.0
@@ -39,6 +41,9 @@ _KEYS = {
     # saddle, 3.1 kT below the second minimum (see MullerBrown).
     "muller_brown": {"energy_scale": ("energy", "0.2 kJ/mol"), "length_scale": ("length", "1 nm"),
                      **_COMMON_KEYS},
+    # dimension None: a whole number of at least 1
+    "harmonic_well": {"particles": (None, 1), "spring": ("spring_length", "1000 kJ/mol/nm**2"),
+                      "mass": ("mass", "12 amu")},
 }
 
 # Müller & Brown (1979) constants, one row per term: A, a, b, c, x0, y0.
@@ -64,16 +69,18 @@ def read_model(node):
 
     Returns
     -------
-    DoubleWell or MullerBrown
-        The parameters as floats in MD units.
+    DoubleWell, MullerBrown or HarmonicWell
+        The parameters as floats in MD units (``particles`` as an int).
     """
     node.mapping(required=("name",))
     name = node.get("name").text(choices=MODEL_NAMES)
     keys = _KEYS[name]
     node.mapping(allowed=("name", *keys), required=("name",))
-    values = {key: node.get(key, default).quantity(dimension, positive=key != "tilt")
+    values = {key: node.get(key, default).integer(minimum=1) if dimension is None
+              else node.get(key, default).quantity(dimension, positive=key != "tilt")
               for key, (dimension, default) in keys.items()}
-    return DoubleWell(**values) if name == "double_well" else MullerBrown(**values)
+    classes = {"double_well": DoubleWell, "muller_brown": MullerBrown, "harmonic_well": HarmonicWell}
+    return classes[name](**values)
 
 
 def build_model(node):
@@ -91,17 +98,23 @@ def build_model(node):
 
 def _one_particle(expression, parameters, mass, position):
     """One particle of ``mass`` (amu) in a CustomExternalForce with per-particle parameters."""
+    return _particles(expression, parameters, mass, [position])
+
+
+def _particles(expression, parameters, mass, positions):
+    """Independent particles of ``mass`` (amu), one residue each, in one CustomExternalForce."""
     force = openmm.CustomExternalForce(expression)
     for key in parameters:
         force.addPerParticleParameter(key)
-    force.addParticle(0, list(parameters.values()))
     system = openmm.System()
-    system.addParticle(mass)
-    system.addForce(force)
     topology = app.Topology()
-    residue = topology.addResidue("MDL", topology.addChain())
-    topology.addAtom("P", app.element.carbon, residue)
-    return system, topology, np.array([position], dtype=float)
+    chain = topology.addChain()
+    for index in range(len(positions)):
+        force.addParticle(index, list(parameters.values()))
+        system.addParticle(mass)
+        topology.addAtom("P", app.element.carbon, topology.addResidue("MDL", chain))
+    system.addForce(force)
+    return system, topology, np.array(positions, dtype=float).reshape(-1, 3)
 
 
 def _check_xyz(xyz):
@@ -431,3 +444,52 @@ class MullerBrown(_ExactPopulations):
         with np.errstate(divide="ignore"):
             pmf = -MOLAR_GAS_CONSTANT * temperature * np.log(np.array(densities))
         return pmf - pmf.min()
+
+
+@dataclass(frozen=True)
+class HarmonicWell:
+    """N independent particles in one isotropic harmonic well U = Σ_i ½ spring |r_i|².
+
+    Its d = 3N degrees of freedom are all harmonic, so everything is known in closed form
+    (exact): the configurational partition function is (2π kT / spring)^(d/2), the
+    reduced free energy f = -(d/2) ln(2π kT / spring) (lengths in nm), ⟨U⟩ = (d/2) kT,
+    and βU follows a Gamma(d/2, 1) law. Between temperatures, Δf_ij = (d/2) ln(β_j/β_i).
+
+    Attributes
+    ----------
+    particles : int
+    spring : float, kJ/mol/nm**2
+    mass : float, amu
+    """
+
+    particles: int
+    spring: float
+    mass: float
+    name = "harmonic_well"
+
+    @property
+    def degrees_of_freedom(self):
+        """d = 3N, the number of harmonic degrees of freedom (int)."""
+        return 3 * self.particles
+
+    def compute_energy(self, xyz):
+        """Potential energy, ndarray shape (n_frames,), kJ/mol, of xyz, shape (n_frames, N, 3), nm."""
+        xyz = np.asarray(xyz, dtype=float)
+        if xyz.ndim != 3 or xyz.shape[1:] != (self.particles, 3):
+            raise ValueError(f"xyz must be shape (n_frames, {self.particles}, 3) in nm, "
+                             f"you supplied shape {xyz.shape}.")
+        return 0.5 * self.spring * np.sum(xyz**2, axis=(1, 2))
+
+    def build_system(self):
+        """OpenMM system, topology and positions, shape (N, 3), nm, all at the minimum."""
+        return _particles("0.5*spring*(x^2 + y^2 + z^2)", {"spring": self.spring}, self.mass,
+                          np.zeros((self.particles, 3)))
+
+    def compute_exact_free_energy(self, temperature):
+        """Reduced configurational free energy f = -ln ∫ exp(-U/kT) d^d x (x in nm), in kT."""
+        kt = MOLAR_GAS_CONSTANT * temperature
+        return -0.5 * self.degrees_of_freedom * math.log(2.0 * math.pi * kt / self.spring)
+
+    def compute_exact_mean_energy(self, temperature):
+        """⟨U⟩ = (d/2) kT, in kJ/mol, at ``temperature`` (K)."""
+        return 0.5 * self.degrees_of_freedom * MOLAR_GAS_CONSTANT * temperature

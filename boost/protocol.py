@@ -105,6 +105,7 @@ class RunSettings:
     frame_every: int       # cycles between frames; 0 = no frames
     checkpoint_every: int  # cycles between checkpoints
     minimise: bool
+    retries: int           # restarts from the last checkpoint after a blow-up
 
     @property
     def n_cycles(self):
@@ -399,7 +400,7 @@ def _cycles(node, steps_per_cycle, timestep, what):
 
 def _read_run(node, timestep):
     node.mapping(allowed=("cycle", "equilibration", "production", "frame_interval",
-                          "checkpoint_interval", "minimise"), required=("production",))
+                          "checkpoint_interval", "minimise", "retries"), required=("production",))
     steps_per_cycle = _steps(node.get("cycle", "1 ps"), timestep, "a cycle")
     if steps_per_cycle < 1:
         node.get("cycle", "1 ps").fail("at least one timestep")
@@ -417,6 +418,7 @@ def _read_run(node, timestep):
         checkpoint_every=max(1, _cycles(node.get("checkpoint_interval", "10 ps"), steps_per_cycle,
                                         timestep, "the checkpoint interval")),
         minimise=node.get("minimise", True).boolean(),
+        retries=node.get("retries", 0).integer(minimum=0),
     )
 
 

@@ -5,6 +5,9 @@ walker per window and no swaps, replica exchange adds swaps between walkers.
 """
 
 import json
+import sqlite3
+from contextlib import contextmanager
+from dataclasses import replace
 import logging
 import platform as host_platform
 import socket
@@ -20,11 +23,11 @@ from tqdm import tqdm
 from .conditions import build_conditions, compute_reduced_potentials
 from .coordinates import compute_coordinate_values_many
 from .engine import PlatformChoice, Walker, choose_platform, derive_seeds, prepare_system
-from .exceptions import RunFolderError, SimulationError
+from .exceptions import BoostError, RunFolderError, SimulationError
 from .exchange import swap_all_pairs, swap_neighbours
 from .protocol import resolve_coordinates
-from .store import (LEDGER, PROTOCOL, PROVENANCE, FrameWriter, Ledger, check_folder_for,
-                    write_atomically, write_checkpoint)
+from .store import (LEDGER, PROTOCOL, PROVENANCE, FolderLock, FrameWriter, Ledger, check_folder_for,
+                    read_checkpoint, recorded_last_cycle, write_atomically, write_checkpoint)
 from .systems import load_system
 from .workers import SerialWorkers
 
@@ -105,7 +108,7 @@ def _create_folder(folder, plan, seeds, swap_seed):
 
 
 class Scheduler:
-    """Runs a plan into a run folder."""
+    """Runs a plan into a run folder: a fresh start, or a resume from its last checkpoint."""
 
     def __init__(self, plan, folder, *, progress=True):
         self.plan = plan
@@ -117,44 +120,96 @@ class Scheduler:
         self.masses = plan.built.masses
         protocol = plan.protocol
         self.ladder_shape = (len(protocol.temperatures), *[len(a.centres) for a in protocol.umbrella])
+        self.seeds, self.swap_seed = derive_seeds(protocol.seed, plan.n_walkers)
+        self.retries_left = protocol.run.retries
 
     def run(self):
-        plan, protocol = self.plan, self.plan.protocol
-        state = check_folder_for(self.folder, protocol.text)
-        if state == "same":
-            raise RunFolderError(f"{self.folder}: already holds a run of this protocol; "
-                                 "choose another folder.")
-        seeds, swap_seed = derive_seeds(protocol.seed, plan.n_walkers)
-        walkers = [Walker(r, plan.system, plan.umbrella_names, plan.built.positions, plan.built.box_vectors,
-                          plan.conditions[r], timestep=protocol.timestep, friction=protocol.friction,
-                          platform=plan.platform, seed=seeds[r]) for r in range(plan.n_walkers)]
-        workers = SerialWorkers(walkers)
-        ledger = _create_folder(self.folder, plan, seeds, swap_seed)
-        frames = None
-        if protocol.run.frame_every:
-            frames = FrameWriter(self.folder, plan.built.topology, plan.n_walkers, timestep_ps=protocol.timestep,
-                                 steps_between=protocol.run.frame_every * protocol.run.steps_per_cycle)
+        """Run to the end; returns the folder. Resumes a partial run of the same protocol."""
+        check_folder_for(self.folder, self.plan.protocol.text)
+        self.folder.mkdir(parents=True, exist_ok=True)
+        lock = FolderLock(self.folder)
+        stale = lock.acquire()
         try:
-            if protocol.run.minimise:
-                workers.minimise()
-            workers.draw_velocities(seeds)
-            self._loop(workers, ledger, frames, np.random.default_rng(swap_seed))
+            if stale:
+                log.info("taking over the run folder from %s, which is no longer running", stale)
+            resume = check_folder_for(self.folder, self.plan.protocol.text) == "same" \
+                and (self.folder / LEDGER).exists()
+            with _disk_errors(self.folder):
+                self._run(resume)
+        finally:
+            lock.release()
+        return self.folder
+
+    def _run(self, resume):
+        plan, protocol = self.plan, self.plan.protocol
+        state = read_checkpoint(self.folder) if resume else None
+        if state is not None and state[0] >= protocol.run.n_cycles - 1 \
+                and recorded_last_cycle(self.folder) >= state[0]:
+            log.info("%s: the run is already complete", self.folder)
+            return
+        if resume:
+            plan = self.plan = _with_recorded_platform(plan, self.folder)
+            ledger = Ledger(self.folder / LEDGER, coordinate_names=tuple(plan.coordinates))
+        else:
+            ledger = _create_folder(self.folder, plan, self.seeds, self.swap_seed)
+        workers = SerialWorkers(self._make_walkers())
+        frames = None
+        try:
+            start, assignment, rng = self._restore(workers, ledger, state)
+            if protocol.run.frame_every:
+                frames = FrameWriter(self.folder, plan.built.topology, plan.n_walkers,
+                                     timestep_ps=protocol.timestep,
+                                     steps_between=protocol.run.frame_every * protocol.run.steps_per_cycle,
+                                     counts=ledger.frame_counts(plan.n_walkers))
+            self._loop(workers, ledger, frames, rng, start, assignment)
         finally:
             ledger.close()
             if frames:
                 frames.close()
-        return self.folder
 
-    def _loop(self, workers, ledger, frames, rng):
+    def _make_walkers(self):
+        plan, protocol = self.plan, self.plan.protocol
+        return [Walker(r, plan.system, plan.umbrella_names, plan.built.positions, plan.built.box_vectors,
+                       plan.conditions[r], timestep=protocol.timestep, friction=protocol.friction,
+                       platform=plan.platform, seed=self.seeds[r]) for r in range(plan.n_walkers)]
+
+    def _restore(self, workers, ledger, state):
+        """Walkers, assignment and swap RNG at the last checkpoint; ledger cut back to it."""
+        if state is None:
+            ledger.truncate_after(-1)
+            if self.plan.protocol.run.minimise:
+                workers.minimise()
+            workers.draw_velocities(self.seeds)
+            assignment, rng = list(range(self.plan.n_walkers)), np.random.default_rng(self.swap_seed)
+            self._checkpoint(workers, -1, assignment, rng)
+            return 0, assignment, rng
+        cycle, scheduler_state, walker_states = state
+        ledger.truncate_after(cycle)
+        assignment = list(scheduler_state["assignment"])
+        workers.restore(walker_states, [self.plan.conditions[k] for k in assignment])
+        rng = np.random.default_rng(self.swap_seed)
+        rng.bit_generator.state = scheduler_state["rng"]
+        return cycle + 1, assignment, rng
+
+    def _checkpoint(self, workers, cycle, assignment, rng):
+        write_checkpoint(self.folder, cycle=cycle, walker_states=workers.checkpoints(),
+                         scheduler_state={"assignment": list(assignment), "rng": rng.bit_generator.state})
+
+    def _loop(self, workers, ledger, frames, rng, start, assignment):
         plan, run = self.plan, self.plan.protocol.run
-        assignment = list(range(plan.n_walkers))
         cycle_ps = run.steps_per_cycle * plan.protocol.timestep
-        bar = tqdm(total=run.n_cycles, unit="cycle", disable=not self.progress, desc="boost run",
-                   dynamic_ncols=True)
+        bar = tqdm(total=run.n_cycles, initial=start, unit="cycle", disable=not self.progress,
+                   desc="boost run", dynamic_ncols=True)
         with bar:
-            for cycle in range(run.n_cycles):
-                observations = workers.propagate(run.steps_per_cycle)
-                values_rc, u_kr = self._evaluate(observations, assignment, cycle)
+            cycle = start
+            while cycle < run.n_cycles:
+                try:
+                    observations = workers.propagate(run.steps_per_cycle)
+                    values_rc, u_kr = self._evaluate(observations, assignment, cycle)
+                except SimulationError as err:
+                    cycle, assignment, rng = self._retry(err, workers, ledger, frames, cycle)
+                    bar.n = cycle
+                    continue
                 new_assignment, tally = self._swap(u_kr, assignment, cycle, rng)
                 written = []
                 if frames and (cycle + 1) % run.frame_every == 0:
@@ -167,10 +222,29 @@ class Scheduler:
                 assignment = new_assignment
                 workers.assign([plan.conditions[k] for k in assignment])
                 if (cycle + 1) % run.checkpoint_every == 0 or cycle + 1 == run.n_cycles:
-                    write_checkpoint(self.folder, cycle=cycle, walker_states=workers.checkpoints(),
-                                     scheduler_state={"assignment": assignment,
-                                                      "rng": rng.bit_generator.state})
+                    self._checkpoint(workers, cycle, assignment, rng)
                 bar.update()
+                cycle += 1
+
+    def _retry(self, err, workers, ledger, frames, cycle):
+        """After a blow-up: back to the last checkpoint with fresh velocities, a bounded number of times."""
+        if self.retries_left <= 0:
+            raise SimulationError(f"{err} The run folder holds every cycle before it and can be resumed; "
+                                  "try a smaller timestep, minimisation, or run.retries.") from None
+        self.retries_left -= 1
+        state = read_checkpoint(self.folder)
+        start, assignment, rng = self._restore(workers, ledger, state)
+        seed = int(np.random.default_rng([self.plan.protocol.seed, cycle, self.retries_left]).integers(1, 2**30))
+        walker = getattr(err, "walker", None)
+        for r, w in enumerate(workers.walkers):
+            if walker is None or r == walker:
+                w.draw_velocities(seed + r)
+        ledger.record_retry(cycle, -1 if walker is None else walker, seed)
+        if frames:
+            frames.cut_back(ledger.frame_counts(self.plan.n_walkers))
+        log.warning("%s; retrying from cycle %d with fresh velocities (%d retries left)", err, start,
+                    self.retries_left)
+        return start, assignment, rng
 
     def _swap(self, u_kr, assignment, cycle, rng):
         settings = self.plan.protocol.exchange
@@ -189,17 +263,45 @@ class Scheduler:
                                                               o.box_vectors) for o in observations]) \
             if self.coordinate_list else np.zeros((len(observations), 0))
         potential_r = np.array([o.potential for o in observations])
-        u_kr = compute_reduced_potentials(
-            plan.conditions, potential_r, values_rc[:, self.umbrella_columns], self.periodic_a,
-            volume_r=[o.volume for o in observations], pressure=plan.protocol.pressure)
         bad = [r for r in range(len(observations))
                if not np.isfinite(potential_r[r]) or not np.all(np.isfinite(observations[r].positions))]
         if bad:
             r = bad[0]
-            raise SimulationError(
-                f"walker {r} in condition {assignment[r]} blew up at cycle {cycle} (energy "
-                f"{potential_r[r]}): try a smaller timestep, minimisation, or a softer start.")
+            raise WalkerBlowUp(r, f"walker {r} in condition {assignment[r]} blew up at cycle {cycle} "
+                                  f"(potential energy {potential_r[r]} kJ/mol).")
+        u_kr = compute_reduced_potentials(
+            plan.conditions, potential_r, values_rc[:, self.umbrella_columns], self.periodic_a,
+            volume_r=[o.volume for o in observations], pressure=plan.protocol.pressure)
         return values_rc, u_kr
+
+
+class WalkerBlowUp(SimulationError):
+    """A walker's energy or positions are no longer finite."""
+
+    def __init__(self, walker, message):
+        super().__init__(message)
+        self.walker = walker
+
+
+def _with_recorded_platform(plan, folder):
+    """Resume on the platform the run started on, so a deterministic run stays bit-for-bit."""
+    provenance = json.loads((Path(folder) / PROVENANCE).read_text())
+    recorded = PlatformChoice(provenance["platform"], provenance["platform_properties"],
+                              tuple(tuple(item) for item in provenance.get("platform_probe", ())))
+    return replace(plan, platform=recorded)
+
+
+@contextmanager
+def _disk_errors(folder):
+    """Turn a full disk or a read-only folder into one clear line; the ledger stays consistent."""
+    try:
+        yield
+    except (OSError, sqlite3.OperationalError) as err:
+        if isinstance(err, BoostError):
+            raise
+        reason = getattr(err, "strerror", None) or str(err)
+        raise RunFolderError(f"{folder}: cannot write ({reason}); the ledger keeps every complete cycle. "
+                             "Free space or fix permissions, then run again to resume.") from None
 
 
 def run_protocol(protocol, folder, *, platform=None, progress=True):

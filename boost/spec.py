@@ -14,7 +14,7 @@ from pathlib import Path
 import yaml
 
 from .exceptions import InputError, ProtocolError, where
-from .units import parse_quantity
+from .units import parse_quantity, show_value
 
 _MISSING = object()
 
@@ -22,8 +22,21 @@ _MISSING = object()
 class _StrictLoader(yaml.SafeLoader):
     """Safe loader that refuses duplicate keys instead of keeping the last one."""
 
+    def construct_object(self, node, deep=False):
+        # PyYAML's scalar constructors raise plain errors on text such as '!!int abc',
+        # '!!bool maybe' or the date 2001-13-45; give them the YAML error form and line.
+        try:
+            return super().construct_object(node, deep=deep)
+        except (ValueError, TypeError, KeyError, AttributeError, OverflowError):
+            tag = str(node.tag).replace("tag:yaml.org,2002:", "!!")
+            raise yaml.constructor.ConstructorError(
+                None, None, f"this is not a valid {tag} value", node.start_mark) from None
+
 
 def _construct_mapping(loader, node, deep=False):
+    if not isinstance(node, yaml.MappingNode):  # '!!map' on a scalar or a list
+        raise yaml.constructor.ConstructorError(
+            None, None, f"expected a mapping, but found {node.id}", node.start_mark)
     loader.flatten_mapping(node)
     seen = {}
     for key_node, _ in node.value:
@@ -49,8 +62,11 @@ def parse_yaml(text, file):
         mark = err.problem_mark or err.context_mark
         line = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
         raise ProtocolError(f"{file}: is not valid YAML{line}: {err.problem or err.context}.") from None
+    except yaml.reader.ReaderError as err:  # its str() spans two lines
+        raise ProtocolError(f"{file}: is not valid YAML: character #x{err.character:04x} at position "
+                            f"{err.position} is not allowed in YAML.") from None
     except yaml.YAMLError as err:
-        raise ProtocolError(f"{file}: is not valid YAML: {err}.") from None
+        raise ProtocolError(f"{file}: is not valid YAML: {' '.join(str(err).split())}.") from None
     except RecursionError:
         raise ProtocolError(f"{file}: is nested too deeply to read.") from None
     return Node(data, file, "")
@@ -93,8 +109,10 @@ class Node:
         raise ProtocolError(f"{self.place} must be {expected}. Got {_show(got)} instead.")
 
     def _child_path(self, key):
-        if isinstance(key, int):
-            return f"{self.path}[{key}]"
+        if isinstance(key, int) and not isinstance(key, bool):
+            return f"{self.path}[{show_value(key)}]"
+        if isinstance(key, str) and not (key.isprintable() and len(key) <= 80):
+            return f"{self.path}[{show_value(key)}]"  # keeps the message on one short line
         return f"{self.path}.{key}" if self.path else str(key)
 
     # -- mappings ---------------------------------------------------------------------
@@ -105,7 +123,8 @@ class Node:
         if allowed is not None:
             for key in self.value:
                 if key not in allowed:
-                    hint = difflib.get_close_matches(str(key), [str(a) for a in allowed], n=1)
+                    hint = difflib.get_close_matches(key, [str(a) for a in allowed], n=1) \
+                        if isinstance(key, str) and len(key) <= 80 else []
                     suggestion = f" Did you mean '{hint[0]}'?" if hint else ""
                     options = ", ".join(sorted(str(a) for a in allowed))
                     raise ProtocolError(
@@ -148,11 +167,15 @@ class Node:
             self.fail("one of " + ", ".join(map(repr, choices)))
         return self.value
 
-    def integer(self, minimum=None):
+    def integer(self, minimum=None, maximum=None):
+        if maximum is not None:
+            expected = f"a whole number from {minimum} to {maximum}"
+        else:
+            expected = "a whole number" + (f" of at least {minimum}" if minimum is not None else "")
         if isinstance(self.value, bool) or not isinstance(self.value, int):
-            self.fail("a whole number" + (f" of at least {minimum}" if minimum is not None else ""))
-        if minimum is not None and self.value < minimum:
-            self.fail(f"a whole number of at least {minimum}")
+            self.fail(expected)
+        if (minimum is not None and self.value < minimum) or (maximum is not None and self.value > maximum):
+            self.fail(expected)
         return self.value
 
     def number(self):
@@ -188,6 +211,4 @@ def _example(dimension):
     return DIMENSIONS[dimension][3]
 
 
-def _show(value):
-    text = repr(value)
-    return text if len(text) <= 80 else text[:77] + "..."
+_show = show_value

@@ -21,6 +21,7 @@ import hashlib
 import json
 import os
 import sqlite3
+import struct
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -30,6 +31,7 @@ from .conditions import Condition
 from .exceptions import RunFolderError
 
 LEDGER = "ledger.sqlite"
+LOCK = "lock"
 PROTOCOL = "protocol.yaml"
 PROVENANCE = "provenance.json"
 
@@ -59,7 +61,7 @@ def check_folder_for(path, protocol_text):
         raise RunFolderError(f"{path}: is a file, not a run folder.")
     copy = path / PROTOCOL
     if not copy.exists():
-        if any(path.iterdir()):
+        if any(entry.name != LOCK for entry in path.iterdir()):
             raise RunFolderError(f"{path}: is not empty and is not a run folder; choose another folder.")
         return "new"
     if protocol_hash(copy.read_text(encoding="utf-8")) != protocol_hash(protocol_text):
@@ -121,6 +123,22 @@ class Ledger:
             self.connection.executemany("INSERT INTO frames VALUES (?, ?, ?)",
                                         [(walker, cycle, index) for walker, index in frames])
 
+    def truncate_after(self, cycle):
+        """Forget every record after ``cycle`` (-1: all), in one transaction."""
+        with self.connection:
+            for table in ("cycles", "samples", "swaps", "frames"):
+                self.connection.execute(f"DELETE FROM {table} WHERE cycle > ?", (cycle,))
+
+    def frame_counts(self, n_walkers):
+        """Frames recorded per walker (the frame files may hold more, from a cycle in flight)."""
+        counts = dict(self.connection.execute("SELECT walker, COUNT(*) FROM frames GROUP BY walker"))
+        return [counts.get(r, 0) for r in range(n_walkers)]
+
+    def record_retry(self, cycle, walker, seed):
+        with self.connection:
+            self.connection.execute("CREATE TABLE IF NOT EXISTS retries (cycle INTEGER, walker INTEGER, seed INTEGER)")
+            self.connection.execute("INSERT INTO retries VALUES (?, ?, ?)", (cycle, walker, seed))
+
     def last_cycle(self):
         row = self.connection.execute("SELECT MAX(cycle) FROM cycles").fetchone()
         return -1 if row[0] is None else row[0]
@@ -158,6 +176,17 @@ class LedgerData:
     u_krt: np.ndarray
     swaps: np.ndarray
     metadata: dict
+
+
+def recorded_last_cycle(folder):
+    """The last complete cycle in a run folder's ledger (-1 when none), read only."""
+    path = Path(folder) / LEDGER
+    connection = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    try:
+        value = connection.execute("SELECT MAX(cycle) FROM cycles").fetchone()[0]
+    finally:
+        connection.close()
+    return -1 if value is None else value
 
 
 def read_ledger(folder):
@@ -199,35 +228,69 @@ def _read(connection):
         u_krt=np.ascontiguousarray(u_krt), swaps=swaps, metadata=metadata)
 
 
+_DCD_HEADER = 276   # bytes OpenMM's DCDFile writes before the first frame
+
+
+def _dcd_frame_bytes(n_atoms, periodic):
+    return (56 if periodic else 0) + 3 * (8 + 4 * n_atoms)
+
+
 class FrameWriter:
-    """One DCD file per walker under frames/, appended at the frame interval."""
+    """One DCD file per walker under frames/, appended at the frame interval.
 
-    def __init__(self, folder, topology, n_walkers, *, timestep_ps, steps_between):
-        from openmm import app, unit
+    ``counts``: frames already recorded per walker (resume); each file is cut back to
+    that many frames, so a frame written in a cycle that never completed disappears.
+    """
 
-        self._app, self._unit = app, unit
+    def __init__(self, folder, topology, n_walkers, *, timestep_ps, steps_between, counts=None):
+        from openmm import unit
+
+        self._unit = unit
+        self.topology = topology
+        self.dcd_args = (timestep_ps * unit.picosecond, steps_between, steps_between)
         (Path(folder) / "frames").mkdir(exist_ok=True)
-        self.handles = [open(Path(folder) / "frames" / f"walker-{r:03d}.dcd", "wb") for r in range(n_walkers)]
-        self.files = [app.DCDFile(handle, topology, timestep_ps * unit.picosecond, steps_between, steps_between)
-                      for handle in self.handles]
-        self.counts = [0] * n_walkers
+        self.paths = [Path(folder) / "frames" / f"walker-{r:03d}.dcd" for r in range(n_walkers)]
+        self.frame_bytes = _dcd_frame_bytes(topology.getNumAtoms(), topology.getPeriodicBoxVectors() is not None)
+        self.handles, self.files = [], []
+        self._open(list(counts) if counts else [0] * n_walkers)
+
+    def _open(self, counts):
+        from openmm import app
+
+        self.close()
+        self.counts = list(counts)
+        self.handles, self.files = [], []
+        for path, count in zip(self.paths, self.counts):
+            append = count > 0 and path.exists()
+            handle = open(path, "r+b" if append else "wb")
+            if append:
+                handle.truncate(_DCD_HEADER + count * self.frame_bytes)
+                handle.seek(8)
+                handle.write(struct.pack("<i", count))
+            self.handles.append(handle)
+            self.files.append(app.DCDFile(handle, self.topology, *self.dcd_args, append=append))
+
+    def cut_back(self, counts):
+        """Cut each file back to ``counts`` frames (after returning to a checkpoint)."""
+        self._open(counts)
 
     def write(self, walker, positions, box_vectors):
         unit = self._unit
-        box = None if box_vectors is None else [self._vec(row) for row in box_vectors] * unit.nanometer
+        box = None if box_vectors is None else [_vec3(row) for row in box_vectors] * unit.nanometer
         self.files[walker].writeModel(positions * unit.nanometer, periodicBoxVectors=box)
         self.handles[walker].flush()
         self.counts[walker] += 1
         return self.counts[walker] - 1
 
-    @staticmethod
-    def _vec(row):
-        from openmm import Vec3
-        return Vec3(*map(float, row))
-
     def close(self):
         for handle in self.handles:
             handle.close()
+        self.handles = []
+
+
+def _vec3(row):
+    from openmm import Vec3
+    return Vec3(*map(float, row))
 
 
 def write_checkpoint(folder, *, cycle, walker_states, scheduler_state):
@@ -255,3 +318,40 @@ def read_checkpoint(folder):
         states.append(rest[offset: offset + length])
         offset += length
     return header["cycle"], header["scheduler"], states
+
+
+class FolderLock:
+    """An exclusive lock on a run folder, held with flock for as long as a run writes.
+
+    The kernel drops the flock when its process dies, so a lock file left by a dead
+    process is simply taken over; the file names the holder for the error message.
+    """
+
+    def __init__(self, folder):
+        self.path = Path(folder) / LOCK
+        self.fd = None
+
+    def acquire(self):
+        import fcntl
+        import socket
+
+        fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            holder = os.pread(fd, 4096, 0).decode(errors="replace").strip() or "another process"
+            os.close(fd)
+            raise RunFolderError(f"{self.path.parent}: is being written by {holder}; "
+                                 "wait for it to finish or stop it first.") from None
+        previous = os.pread(fd, 4096, 0).decode(errors="replace").strip()
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"process {os.getpid()} on {socket.gethostname()}".encode(), 0)
+        os.fsync(fd)
+        self.fd = fd
+        return previous      # holder text of a stale lock, or ''
+
+    def release(self):
+        if self.fd is not None:
+            os.ftruncate(self.fd, 0)
+            os.close(self.fd)
+            self.fd = None

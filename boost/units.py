@@ -11,6 +11,7 @@ Energies become reduced (dimensionless, in kT) only through :func:`reduced`.
 
 import math
 import re
+import reprlib
 
 import pint
 
@@ -42,7 +43,34 @@ DIMENSIONS = {
 }
 
 _NUMBER = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(.*?)\s*$")
+# A numeric literal that is not part of a name; whole ones become floats before pint sees
+# them, so "10**10**10" overflows at once instead of building a huge integer.
+_LITERAL = re.compile(r"(?<![\w.])(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?(?![\w.])")
+_MAX_TEXT = 200  # characters; pint's parser is slow on long texts and none is that long
 REGISTRY.define("amu = g/mol")  # per particle in OpenMM's sense: molar mass in g/mol
+
+
+class _Brief(reprlib.Repr):
+    """repr() cut short: bounded work on huge, deep or self-referencing values."""
+
+    def __init__(self):
+        super().__init__()
+        self.maxlevel, self.maxstring, self.maxother, self.maxlong = 3, 60, 60, 60
+        self.maxlist = self.maxtuple = self.maxdict = self.maxset = self.maxfrozenset = 6
+
+    def repr_int(self, x, level):
+        if x.bit_length() > 192:  # repr() refuses ints beyond 4300 digits; a sketch will do
+            return f"<a whole number of about {int(x.bit_length() * math.log10(2)) + 1} digits>"
+        return repr(x)
+
+
+_BRIEF = _Brief()
+
+
+def show_value(value):
+    """A short one-line repr of any YAML value, for error messages."""
+    text = _BRIEF.repr(value)
+    return text if len(text) <= 80 else text[:77] + "..."
 
 
 def _angle_power(quantity):
@@ -50,6 +78,7 @@ def _angle_power(quantity):
 
 
 def _parse(text):
+    text = _LITERAL.sub(lambda m: m.group() + ".0" if m.group().isdigit() else m.group(), text)
     match = _NUMBER.match(text)
     if match and match.group(2) and not match.group(2).startswith(("/", "*")):
         return Q_(float(match.group(1)), match.group(2))
@@ -77,24 +106,30 @@ def parse_quantity(value, dimension, *, place):
     target, angle_power, kind, example = DIMENSIONS[dimension]
     expected = f"{place} must be {kind} with its unit, such as '{example}'."
     if isinstance(value, bool) or not isinstance(value, (str, int, float)):
-        raise ProtocolError(f"{expected} Got {value!r} instead.")
-    text = str(value)
+        raise ProtocolError(f"{expected} Got {show_value(value)} instead.")
+    if not isinstance(value, str):
+        raise ProtocolError(f"{expected} Got '{show_value(value)}', a bare number without a unit.")
+    text, shown = value, show_value(value)
+    if len(text) > _MAX_TEXT:
+        raise ProtocolError(f"{expected} Got {shown}, which is too long for a quantity.")
     if re.search(r"\bkT\b", text):
-        raise ProtocolError(f"{expected} Got {text!r}: kT depends on temperature; give kJ/mol or kcal/mol.")
+        raise ProtocolError(f"{expected} Got {shown}: kT depends on temperature; give kJ/mol or kcal/mol.")
     try:
         quantity = _parse(text)
     except Exception:  # pint raises many types for bad text
-        raise ProtocolError(f"{expected} Got {text!r}, which is not a quantity pint can read.") from None
+        raise ProtocolError(f"{expected} Got {shown}, which is not a quantity pint can read.") from None
     if not isinstance(quantity, pint.Quantity) or not quantity._units:
-        raise ProtocolError(f"{expected} Got {text!r}, a bare number without a unit.")
+        raise ProtocolError(f"{expected} Got {shown}, a bare number without a unit.")
     if _angle_power(quantity) != angle_power:
-        raise ProtocolError(f"{expected} Got {text!r}, which has the wrong angle units.")
+        raise ProtocolError(f"{expected} Got {shown}, which has the wrong angle units.")
     try:
         number = float(quantity.to(target).magnitude)
     except (pint.DimensionalityError, pint.OffsetUnitCalculusError):
-        raise ProtocolError(f"{expected} Got {text!r}, which is not {kind}.") from None
+        raise ProtocolError(f"{expected} Got {shown}, which is not {kind}.") from None
+    except (TypeError, ArithmeticError):  # a complex magnitude, as from '(-1)**0.5 K'
+        raise ProtocolError(f"{expected} Got {shown}, which is not a finite real number.") from None
     if not math.isfinite(number):
-        raise ProtocolError(f"{expected} Got {text!r}, which is not finite.")
+        raise ProtocolError(f"{expected} Got {shown}, which is not finite.")
     return number
 
 

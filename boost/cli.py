@@ -81,18 +81,30 @@ def check(protocol_file):
 @click.option("--platform", "platform_name", type=click.Choice(["auto", "Reference", "CPU"]),
               help="OpenMM platform, overriding the protocol.")
 @click.option("--threads", type=click.IntRange(min=1), help="CPU platform threads.")
+@click.option("--workers", type=click.IntRange(min=1), help="Worker processes (default: one per core).")
 @click.option("--quiet", is_flag=True, help="No progress bar.")
-def run(protocol_file, folder, platform_name, threads, quiet):
-    """Run PROTOCOL_FILE into a run folder."""
+def run(protocol_file, folder, platform_name, threads, workers, quiet):
+    """Run PROTOCOL_FILE into a run folder; a partial run of the same protocol resumes.
+
+    Under mpiexec, walkers are spread over the ranks and rank 0 writes the run folder.
+    """
     from .protocol import load_protocol
     from .scheduler import make_plan, Scheduler
     from .summary import describe_plan
+    from .workers import mpi_world, release_waiting_ranks, serve_mpi_rank
 
-    protocol = load_protocol(protocol_file)
-    folder = folder or Path("runs") / protocol_file.stem
-    plan = make_plan(protocol, platform=_platform_override(protocol, platform_name, threads))
-    click.echo(describe_plan(plan))
-    Scheduler(plan, folder, progress=not quiet).run()
+    comm = mpi_world()
+    if comm is not None and comm.rank > 0:
+        serve_mpi_rank(comm)
+        return
+    try:
+        protocol = load_protocol(protocol_file)
+        folder = folder or Path("runs") / protocol_file.stem
+        plan = make_plan(protocol, platform=_platform_override(protocol, platform_name, threads))
+        click.echo(describe_plan(plan))
+        Scheduler(plan, folder, progress=not quiet, workers=workers, comm=comm).run()
+    finally:
+        release_waiting_ranks(comm)
     click.echo(f"run complete: {folder}")
 
 
@@ -135,6 +147,29 @@ def analyze(run_folder, temperature, energy_unit, output):
     out = write_report(analysis, output)
     click.echo(format_summary(analysis))
     click.echo(f"tables and plots: {out}")
+
+
+@main.command()
+@click.argument("source", type=click.Path(path_type=Path))
+@click.option("-o", "--folder", type=click.Path(file_okay=False, path_type=Path),
+              help="Folder for the repeat, absent or empty (default: SOURCE-repeat for a run folder).")
+@click.option("--commit", "revision", help="Run the protocol file as committed at this git revision.")
+@click.option("--against", type=click.Path(file_okay=False, path_type=Path),
+              help="Run folder to compare the repeat with (default: SOURCE when it is a run folder).")
+@click.option("--quiet", is_flag=True, help="No progress bar.")
+@click.pass_context
+def repeat(ctx, source, folder, revision, against, quiet):
+    """Run SOURCE again (a run folder or a protocol file) and compare every headline number.
+
+    Exit code 0 when no number differs, 1 when one does, 2 for bad input.
+    """
+    from .repeat import format_outcome, plan_repeat, run_repeat
+
+    plan = plan_repeat(source, folder=folder, revision=revision, against=against)
+    outcome = run_repeat(plan, progress=not quiet)
+    click.echo(format_outcome(outcome))
+    if outcome.comparison is not None and not outcome.comparison.reproduced:
+        ctx.exit(1)
 
 
 if __name__ == "__main__":

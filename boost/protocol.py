@@ -21,7 +21,8 @@ from .exceptions import ProtocolError
 from .spec import Node, load_yaml, parse_yaml, read_text
 
 SCHEMA_VERSION = 1
-_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
+_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")   # used with match(); \Z refuses "x\n"
+_MAX_COUNT = 10_000    # windows, temperatures or bins from a 'count'; more is a typo, not a plan
 _RESERVED = {"cycle", "walker", "condition", "potential", "volume", "reduced", "time", "production"}
 _POINT_COUNT = {"distance": 2, "angle": 3, "dihedral": 4, "position": 1}
 _AXES = {"x": 0, "y": 1, "z": 2}
@@ -95,6 +96,7 @@ class PlatformSettings:
     name: str              # 'auto', 'Reference' or 'CPU'
     threads: int | None
     deterministic: bool
+    workers: object = "auto"   # worker processes: 'auto' or a whole number
 
 
 @dataclass(frozen=True)
@@ -176,7 +178,7 @@ def parse_protocol(text, path):
     root = parse_yaml(text, path)
     root.mapping(allowed=TOP_KEYS, required=("protocol", "system", "seed", "temperature", "timestep", "run"))
     version = root.get("protocol")
-    if version.value != SCHEMA_VERSION:
+    if isinstance(version.value, bool) or version.value != SCHEMA_VERSION:   # true == 1 in Python
         version.fail(f"the schema version {SCHEMA_VERSION}")
     temperature = root.get("temperature").quantity("temperature", positive=True)
     coordinates = _read_coordinates(root.get("coordinates", {}))
@@ -325,9 +327,11 @@ def _read_centres(node, coordinate):
         node.mapping(allowed=("from", "to", "count"), required=("from", "to", "count"))
         start = node.get("from").quantity(dimension)
         stop = node.get("to").quantity(dimension)
-        count = node.get("count").integer(minimum=2)
+        count = node.get("count").integer(minimum=2, maximum=_MAX_COUNT)
         if stop <= start:
             node.get("to").fail("above 'from'")
+        if not math.isfinite(stop - start):
+            node.fail("a range of finite width")
         centres = tuple(np.linspace(start, stop, count).tolist())
     low, high, what = _RANGES.get(coordinate.kind, (-math.inf, math.inf, ""))
     if any(not low - 1e-9 <= c <= high + 1e-9 for c in centres):
@@ -354,7 +358,7 @@ def _read_temperatures(node, temperature):
         node.mapping(allowed=("lowest", "highest", "count"), required=("lowest", "highest", "count"))
         lowest = node.get("lowest").quantity("temperature", positive=True)
         highest = node.get("highest").quantity("temperature", positive=True)
-        count = node.get("count").integer(minimum=2)
+        count = node.get("count").integer(minimum=2, maximum=_MAX_COUNT)
         if highest <= lowest:
             node.get("highest").fail("above 'lowest'")
         ladder = tuple(np.geomspace(lowest, highest, count).tolist())
@@ -374,19 +378,21 @@ def _read_exchange(node):
 def _read_platform(node):
     if isinstance(node.value, str):
         node = Node({"name": node.value}, node.file, node.path)
-    node.mapping(allowed=("name", "threads", "deterministic"))
+    node.mapping(allowed=("name", "threads", "deterministic", "workers"))
     name = node.get("name", "auto").text(choices=("auto", "Reference", "CPU"))
     threads = node.get("threads", None)
+    workers = node.get("workers", "auto")
     return PlatformSettings(
         name=name, threads=None if threads.value is None else threads.integer(minimum=1),
-        deterministic=node.get("deterministic", True).boolean())
+        deterministic=node.get("deterministic", True).boolean(),
+        workers="auto" if workers.value == "auto" else workers.integer(minimum=1))
 
 
 # -- run length -----------------------------------------------------------------------
 def _steps(node, timestep, what):
     value = node.quantity("time", non_negative=True)
     steps = value / timestep
-    if abs(steps - round(steps)) > 1e-6 * max(1.0, steps):
+    if not math.isfinite(steps) or abs(steps - round(steps)) > 1e-6 * max(1.0, steps):
         node.fail(f"a whole number of timesteps ({timestep * 1000:g} fs) for {what}")
     return int(round(steps))
 
@@ -436,8 +442,8 @@ def _read_interval(node, coordinate):
 def _read_basins(node, coordinates):
     basins = {}
     for name, entry in node.items():
-        if not isinstance(name, str) or not name.strip():
-            entry.fail("named by a non-empty text", got=name)
+        if not isinstance(name, str) or not name.strip() or not name.isprintable():
+            entry.fail("named by a non-empty, printable text", got=name)   # it heads table columns
         intervals = {}
         for coordinate_name, interval in entry.items():
             coordinate = _coordinate(Node(coordinate_name, node.file, interval.path), coordinates)
@@ -480,7 +486,9 @@ def _read_analysis(node, coordinates):
         stop = entry.get("to").quantity(coordinate.value_dimension)
         if stop <= start:
             entry.get("to").fail("above 'from'")
-        count = entry.get("count").integer(minimum=1)
+        if not math.isfinite(stop - start):
+            entry.fail("a range of finite width")
+        count = entry.get("count").integer(minimum=1, maximum=_MAX_COUNT)
         bins.append(Bins(coordinate.name, tuple(np.linspace(start, stop, count + 1).tolist())))
     unit = node.get("energy_unit", "kJ/mol").text(choices=("kJ/mol", "kcal/mol", "kT"))
     return AnalysisSettings(bins=tuple(bins), energy_unit=unit)

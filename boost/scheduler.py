@@ -21,15 +21,14 @@ import numpy as np
 from tqdm import tqdm
 
 from .conditions import build_conditions, compute_reduced_potentials
-from .coordinates import compute_coordinate_values_many
-from .engine import PlatformChoice, Walker, choose_platform, derive_seeds, prepare_system
+from .engine import PlatformChoice, choose_platform, derive_seeds, prepare_system
 from .exceptions import BoostError, RunFolderError, SimulationError
 from .exchange import swap_all_pairs, swap_neighbours
 from .protocol import resolve_coordinates
 from .store import (LEDGER, PROTOCOL, PROVENANCE, FolderLock, FrameWriter, Ledger, check_folder_for,
                     read_checkpoint, recorded_last_cycle, write_atomically, write_checkpoint)
 from .systems import load_system
-from .workers import SerialWorkers
+from .workers import WalkerSetup, open_workers
 
 log = logging.getLogger("boost")
 
@@ -110,8 +109,10 @@ def _create_folder(folder, plan, seeds, swap_seed):
 class Scheduler:
     """Runs a plan into a run folder: a fresh start, or a resume from its last checkpoint."""
 
-    def __init__(self, plan, folder, *, progress=True):
+    def __init__(self, plan, folder, *, progress=True, workers=None, comm=None):
         self.plan = plan
+        self.comm = comm
+        self.worker_count = workers if workers is not None else plan.protocol.platform.workers
         self.folder = Path(folder)
         self.progress = progress
         self.coordinate_list = list(plan.coordinates.values())
@@ -152,7 +153,7 @@ class Scheduler:
             ledger = Ledger(self.folder / LEDGER, coordinate_names=tuple(plan.coordinates))
         else:
             ledger = _create_folder(self.folder, plan, self.seeds, self.swap_seed)
-        workers = SerialWorkers(self._make_walkers())
+        workers = open_workers(self._walker_setup(), self.worker_count, self.comm)
         frames = None
         try:
             start, assignment, rng = self._restore(workers, ledger, state)
@@ -163,15 +164,20 @@ class Scheduler:
                                      counts=ledger.frame_counts(plan.n_walkers))
             self._loop(workers, ledger, frames, rng, start, assignment)
         finally:
+            workers.close()
             ledger.close()
             if frames:
                 frames.close()
 
-    def _make_walkers(self):
+    def _walker_setup(self):
+        import openmm
+
         plan, protocol = self.plan, self.plan.protocol
-        return [Walker(r, plan.system, plan.umbrella_names, plan.built.positions, plan.built.box_vectors,
-                       plan.conditions[r], timestep=protocol.timestep, friction=protocol.friction,
-                       platform=plan.platform, seed=self.seeds[r]) for r in range(plan.n_walkers)]
+        return WalkerSetup(
+            system_xml=openmm.XmlSerializer.serialize(plan.system), umbrella_names=plan.umbrella_names,
+            positions=plan.built.positions, box_vectors=plan.built.box_vectors, conditions=plan.conditions,
+            coordinates=tuple(self.coordinate_list), masses=self.masses, timestep=protocol.timestep,
+            friction=protocol.friction, platform=plan.platform, seeds=tuple(self.seeds))
 
     def _restore(self, workers, ledger, state):
         """Walkers, assignment and swap RNG at the last checkpoint; ledger cut back to it."""
@@ -179,14 +185,14 @@ class Scheduler:
             ledger.truncate_after(-1)
             if self.plan.protocol.run.minimise:
                 workers.minimise()
-            workers.draw_velocities(self.seeds)
+            workers.draw_velocities(dict(enumerate(self.seeds)))
             assignment, rng = list(range(self.plan.n_walkers)), np.random.default_rng(self.swap_seed)
             self._checkpoint(workers, -1, assignment, rng)
             return 0, assignment, rng
         cycle, scheduler_state, walker_states = state
         ledger.truncate_after(cycle)
         assignment = list(scheduler_state["assignment"])
-        workers.restore(walker_states, [self.plan.conditions[k] for k in assignment])
+        workers.restore(walker_states, assignment)
         rng = np.random.default_rng(self.swap_seed)
         rng.bit_generator.state = scheduler_state["rng"]
         return cycle + 1, assignment, rng
@@ -204,23 +210,23 @@ class Scheduler:
             cycle = start
             while cycle < run.n_cycles:
                 try:
-                    observations = workers.propagate(run.steps_per_cycle)
-                    values_rc, u_kr = self._evaluate(observations, assignment, cycle)
+                    framing = bool(frames) and (cycle + 1) % run.frame_every == 0
+                    reports = workers.propagate(run.steps_per_cycle, framing)
+                    values_rc, u_kr = self._evaluate(reports, assignment, cycle)
                 except SimulationError as err:
                     cycle, assignment, rng = self._retry(err, workers, ledger, frames, cycle)
                     bar.n = cycle
                     continue
                 new_assignment, tally = self._swap(u_kr, assignment, cycle, rng)
-                written = []
-                if frames and (cycle + 1) % run.frame_every == 0:
-                    written = [(r, frames.write(r, o.positions, o.box_vectors)) for r, o in enumerate(observations)]
+                written = [(r, frames.write(r, o.positions, o.box_vectors)) for r, o in enumerate(reports)] \
+                    if framing else []
                 ledger.record_cycle(
                     cycle, time=(cycle + 1) * cycle_ps, production=cycle >= run.equilibration_cycles,
-                    condition_r=assignment, potential_r=[o.potential for o in observations],
-                    volume_r=[o.volume for o in observations], values_rc=values_rc, u_kr=u_kr,
+                    condition_r=assignment, potential_r=[o.potential for o in reports],
+                    volume_r=[o.volume for o in reports], values_rc=values_rc, u_kr=u_kr,
                     swaps=tally, frames=written)
                 assignment = new_assignment
-                workers.assign([plan.conditions[k] for k in assignment])
+                workers.assign(assignment)
                 if (cycle + 1) % run.checkpoint_every == 0 or cycle + 1 == run.n_cycles:
                     self._checkpoint(workers, cycle, assignment, rng)
                 bar.update()
@@ -236,9 +242,7 @@ class Scheduler:
         start, assignment, rng = self._restore(workers, ledger, state)
         seed = int(np.random.default_rng([self.plan.protocol.seed, cycle, self.retries_left]).integers(1, 2**30))
         walker = getattr(err, "walker", None)
-        for r, w in enumerate(workers.walkers):
-            if walker is None or r == walker:
-                w.draw_velocities(seed + r)
+        workers.draw_velocities({r: seed + r for r in range(self.plan.n_walkers) if walker in (None, r)})
         ledger.record_retry(cycle, -1 if walker is None else walker, seed)
         if frames:
             frames.cut_back(ledger.frame_counts(self.plan.n_walkers))
@@ -257,21 +261,18 @@ class Scheduler:
                                          attempts=settings.attempts)
         return new, tally.pairs
 
-    def _evaluate(self, observations, assignment, cycle):
+    def _evaluate(self, reports, assignment, cycle):
         plan = self.plan
-        values_rc = np.vstack([compute_coordinate_values_many(self.coordinate_list, o.positions, self.masses,
-                                                              o.box_vectors) for o in observations]) \
-            if self.coordinate_list else np.zeros((len(observations), 0))
-        potential_r = np.array([o.potential for o in observations])
-        bad = [r for r in range(len(observations))
-               if not np.isfinite(potential_r[r]) or not np.all(np.isfinite(observations[r].positions))]
+        bad = [o.walker for o in reports if not o.finite]
         if bad:
             r = bad[0]
             raise WalkerBlowUp(r, f"walker {r} in condition {assignment[r]} blew up at cycle {cycle} "
-                                  f"(potential energy {potential_r[r]} kJ/mol).")
+                                  f"(potential energy {reports[r].potential} kJ/mol).")
+        values_rc = np.array([o.values for o in reports]).reshape(len(reports), len(self.coordinate_list))
+        potential_r = np.array([o.potential for o in reports])
         u_kr = compute_reduced_potentials(
             plan.conditions, potential_r, values_rc[:, self.umbrella_columns], self.periodic_a,
-            volume_r=[o.volume for o in observations], pressure=plan.protocol.pressure)
+            volume_r=[o.volume for o in reports], pressure=plan.protocol.pressure)
         return values_rc, u_kr
 
 
@@ -304,7 +305,10 @@ def _disk_errors(folder):
                              "Free space or fix permissions, then run again to resume.") from None
 
 
-def run_protocol(protocol, folder, *, platform=None, progress=True):
-    """Plan (check everything), then run ``protocol`` into ``folder``."""
+def run_protocol(protocol, folder, *, platform=None, progress=True, workers=None):
+    """Plan (check everything), then run ``protocol`` into ``folder``.
+
+    ``workers``: worker processes (None: the protocol's ``platform.workers``).
+    """
     plan = make_plan(protocol, platform=platform)
-    return Scheduler(plan, folder, progress=progress).run()
+    return Scheduler(plan, folder, progress=progress, workers=workers).run()

@@ -168,10 +168,9 @@ class Node:
         return self.value
 
     def integer(self, minimum=None, maximum=None):
+        expected = "a whole number" + (f" of at least {minimum}" if minimum is not None else "")
         if maximum is not None:
-            expected = f"a whole number from {minimum} to {maximum}"
-        else:
-            expected = "a whole number" + (f" of at least {minimum}" if minimum is not None else "")
+            expected += f"{' and' if minimum is not None else ' of'} at most {maximum}"
         if isinstance(self.value, bool) or not isinstance(self.value, int):
             self.fail(expected)
         if (minimum is not None and self.value < minimum) or (maximum is not None and self.value > maximum):

@@ -1,46 +1,308 @@
 """Who owns the walkers: the scheduler talks to workers, never to contexts directly.
 
-Only condition assignments go in and observations (energies, positions) come out, so a
-worker may live in this process (here), in another process, or on another MPI rank.
+A :class:`WalkerHost` owns some walkers (their OpenMM contexts live as long as the run)
+and answers commands. Hosts live in this process (:class:`SerialWorkers`), in child
+processes (:class:`ProcessWorkers`) or on MPI ranks (:class:`MPIWorkers`); all three offer
+the same methods. Per cycle only condition indices go in and energies, coordinate values
+and volumes come out; positions cross only when frames are due.
 """
 
+import multiprocessing
+import os
+from dataclasses import dataclass
 
-class SerialWorkers:
-    """All walkers in this process, propagated one after another."""
+import numpy as np
 
-    def __init__(self, walkers):
-        self.walkers = list(walkers)
+from .coordinates import compute_coordinate_values_many
+from .engine import Walker
 
-    @property
-    def n_walkers(self):
-        return len(self.walkers)
+
+@dataclass(frozen=True)
+class WalkerSetup:
+    """Everything a host needs to build its walkers (picklable; the System travels as XML)."""
+
+    system_xml: str
+    umbrella_names: tuple
+    positions: np.ndarray
+    box_vectors: object
+    conditions: tuple
+    coordinates: tuple        # boost.coordinates.Coordinate, in ledger column order
+    masses: np.ndarray
+    timestep: float
+    friction: float
+    platform: object
+    seeds: tuple
+
+
+@dataclass(frozen=True)
+class Report:
+    """One walker after one cycle: potential (kJ/mol, umbrellas excluded), values (nm, rad)."""
+
+    walker: int
+    potential: float
+    values: np.ndarray
+    volume: float | None
+    finite: bool
+    positions: np.ndarray | None = None
+    box_vectors: np.ndarray | None = None
+
+
+class WalkerHost:
+    """Owns walkers ``indices`` and carries out the commands of the worker protocol."""
+
+    def __init__(self, setup, indices):
+        import openmm
+
+        system = openmm.XmlSerializer.deserialize(setup.system_xml)
+        self.setup = setup
+        self.walkers = {r: Walker(r, system, setup.umbrella_names, setup.positions, setup.box_vectors,
+                                  setup.conditions[r], timestep=setup.timestep, friction=setup.friction,
+                                  platform=setup.platform, seed=setup.seeds[r]) for r in indices}
 
     def minimise(self):
-        for walker in self.walkers:
+        for walker in self.walkers.values():
             walker.minimise()
+        return {}
 
     def draw_velocities(self, seeds):
-        for walker, seed in zip(self.walkers, seeds):
-            walker.draw_velocities(seed)
+        """seeds: dict walker -> seed (only walkers of this host are touched)."""
+        for r, seed in seeds.items():
+            if r in self.walkers:
+                self.walkers[r].draw_velocities(seed)
+        return {}
 
-    def propagate(self, n_steps):
-        """Advance every walker ``n_steps``; return their observations in walker order."""
-        for walker in self.walkers:
+    def propagate(self, n_steps, with_positions):
+        reports = {}
+        for r, walker in self.walkers.items():
             walker.step(n_steps)
-        return [walker.observe() for walker in self.walkers]
+            o = walker.observe()
+            finite = bool(np.isfinite(o.potential) and np.all(np.isfinite(o.positions)))
+            values = compute_coordinate_values_many(self.setup.coordinates, o.positions, self.setup.masses,
+                                                    o.box_vectors)[0] if self.setup.coordinates and finite \
+                else np.full(len(self.setup.coordinates), np.nan)
+            keep = with_positions and finite
+            reports[r] = Report(r, o.potential, values, o.volume, finite,
+                                o.positions if keep else None, o.box_vectors if keep else None)
+        return reports
 
     def assign(self, conditions):
-        """Give walker r the condition ``conditions[r]`` (only those that changed)."""
-        for walker, condition in zip(self.walkers, conditions):
-            if walker.condition.index != condition.index:
-                walker.apply(condition)
+        """conditions: dict walker -> condition index."""
+        for r, k in conditions.items():
+            if r in self.walkers and self.walkers[r].condition.index != k:
+                self.walkers[r].apply(self.setup.conditions[k])
+        return {}
 
     def checkpoints(self):
-        return [walker.checkpoint() for walker in self.walkers]
+        return {r: walker.checkpoint() for r, walker in self.walkers.items()}
 
     def restore(self, states, conditions):
-        for walker, state, condition in zip(self.walkers, states, conditions):
-            walker.restore(state, condition)
+        for r, walker in self.walkers.items():
+            walker.restore(states[r], self.setup.conditions[conditions[r]])
+        return {}
+
+
+def spread(n_walkers, n_hosts):
+    """Walker indices of each host, dealt round-robin."""
+    return [list(range(h, n_walkers, n_hosts)) for h in range(n_hosts)]
+
+
+class _Workers:
+    """The scheduler's view of all walkers; subclasses say how a command reaches the hosts."""
+
+    n_walkers = 0
+
+    def call(self, command, *args):
+        raise NotImplementedError
+
+    def minimise(self):
+        self.call("minimise")
+
+    def draw_velocities(self, seeds):
+        self.call("draw_velocities", dict(seeds))
+
+    def propagate(self, n_steps, with_positions=False):
+        """Advance every walker ``n_steps``; return their Reports in walker order."""
+        reports = self.call("propagate", n_steps, with_positions)
+        return [reports[r] for r in range(self.n_walkers)]
+
+    def assign(self, condition_r):
+        self.call("assign", dict(enumerate(condition_r)))
+
+    def checkpoints(self):
+        states = self.call("checkpoints")
+        return [states[r] for r in range(self.n_walkers)]
+
+    def restore(self, states, condition_r):
+        self.call("restore", dict(enumerate(states)), dict(enumerate(condition_r)))
 
     def close(self):
-        self.walkers.clear()
+        pass
+
+
+class SerialWorkers(_Workers):
+    """All walkers in this process, propagated one after another."""
+
+    def __init__(self, setup):
+        self.n_walkers = len(setup.seeds)
+        self.host = WalkerHost(setup, range(self.n_walkers))
+
+    def call(self, command, *args):
+        return getattr(self.host, command)(*args)
+
+
+def _serve_pipe(connection, setup, indices):
+    """Child process: build the walkers, then answer commands until told to stop."""
+    os.environ.setdefault("OPENMM_CPU_THREADS", "1")
+    try:
+        host = WalkerHost(setup, indices)
+        connection.send(("ready", None))
+    except Exception as err:  # report any failure to build to the parent
+        connection.send(("error", err))
+        return
+    while True:
+        command, args = connection.recv()
+        if command == "stop":
+            return
+        try:
+            connection.send(("ok", getattr(host, command)(*args)))
+        except Exception as err:  # sent back and raised in the scheduler
+            connection.send(("error", err))
+
+
+class ProcessWorkers(_Workers):
+    """Walkers spread over child processes on this machine (spawned, so no OpenMM state is forked)."""
+
+    def __init__(self, setup, n_processes):
+        self.n_walkers = len(setup.seeds)
+        context = multiprocessing.get_context("spawn")
+        self.connections, self.processes = [], []
+        for indices in spread(self.n_walkers, n_processes):
+            parent, child = context.Pipe()
+            process = context.Process(target=_serve_pipe, args=(child, setup, indices), daemon=True)
+            process.start()
+            self.connections.append(parent)
+            self.processes.append(process)
+        self._collect()
+
+    def _collect(self):
+        merged = {}
+        for connection in self.connections:
+            status, value = connection.recv()
+            if status == "error":
+                raise value
+            merged.update(value or {})
+        return merged
+
+    def call(self, command, *args):
+        for connection in self.connections:
+            connection.send((command, args))
+        return self._collect()
+
+    def close(self):
+        for connection, process in zip(self.connections, self.processes):
+            try:
+                connection.send(("stop", ()))
+            except OSError:
+                pass
+            process.join(timeout=10)
+            if process.is_alive():
+                process.kill()
+        self.connections, self.processes = [], []
+
+
+#: Communicators whose ranks have received a setup (the others still wait for one).
+MPI_SETUP_SENT = set()
+
+
+class MPIWorkers(_Workers):
+    """Walkers spread over MPI ranks; rank 0 runs the scheduler and hosts walkers too."""
+
+    def __init__(self, setup, comm):
+        self.comm = comm
+        self.n_walkers = len(setup.seeds)
+        comm.bcast(setup, root=0)
+        MPI_SETUP_SENT.add(id(comm))
+        self.host = None
+        self._gather(lambda: self._build(setup))
+
+    def _build(self, setup):
+        self.host = WalkerHost(setup, spread(self.n_walkers, self.comm.size)[0])
+        return {}
+
+    def _gather(self, work):
+        try:
+            mine = ("ok", work())
+        except Exception as err:  # gathered like the other ranks' failures, so none is left waiting
+            mine = ("error", err)
+        merged = {}
+        for status, value in self.comm.gather(mine, root=0):
+            if status == "error":
+                raise value
+            merged.update(value or {})
+        return merged
+
+    def call(self, command, *args):
+        self.comm.bcast((command, args), root=0)
+        return self._gather(lambda: getattr(self.host, command)(*args))
+
+    def close(self):
+        self.comm.bcast(("stop", ()), root=0)
+
+
+def serve_mpi_rank(comm):
+    """Ranks above 0: receive the setup, host walkers, answer commands until told to stop."""
+    setup = comm.bcast(None, root=0)
+    if setup is None:          # rank 0 stopped before the run started (bad input, run complete)
+        return
+    try:
+        host = WalkerHost(setup, spread(len(setup.seeds), comm.size)[comm.rank])
+        comm.gather(("ok", {}), root=0)
+    except Exception as err:
+        comm.gather(("error", err), root=0)
+        return
+    while True:
+        command, args = comm.bcast(None, root=0)
+        if command == "stop":
+            return
+        try:
+            comm.gather(("ok", getattr(host, command)(*args)), root=0)
+        except Exception as err:
+            comm.gather(("error", err), root=0)
+
+
+def default_worker_count(n_walkers, threads_per_walker=1):
+    """As many processes as cores allow, never more than walkers."""
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
+    return max(1, min(n_walkers, cores // max(1, threads_per_walker)))
+
+
+def open_workers(setup, count, comm=None):
+    """Workers for a run: MPI ranks when ``comm`` spans several, else ``count`` processes.
+
+    count : int or 'auto' ('auto': one process per core, never more than walkers; one
+            walker or one core means no child process at all)
+    """
+    if comm is not None and comm.size > 1:
+        return MPIWorkers(setup, comm)
+    n_walkers = len(setup.seeds)
+    threads = int(setup.platform.properties.get("Threads", 1)) if setup.platform.name == "CPU" else 1
+    n = default_worker_count(n_walkers, threads) if count == "auto" else min(int(count), n_walkers)
+    return SerialWorkers(setup) if n <= 1 else ProcessWorkers(setup, n)
+
+
+def mpi_world():
+    """MPI.COMM_WORLD when launched by mpiexec on several ranks, else None (mpi4py is optional)."""
+    launched = any(name in os.environ for name in ("PMI_SIZE", "OMPI_COMM_WORLD_SIZE", "PMIX_RANK"))
+    if not launched:
+        return None
+    try:
+        from mpi4py import MPI
+    except ImportError:
+        return None
+    return MPI.COMM_WORLD if MPI.COMM_WORLD.size > 1 else None
+
+
+def release_waiting_ranks(comm):
+    """Let ranks above 0 leave if rank 0 never sent them a setup."""
+    if comm is not None and id(comm) not in MPI_SETUP_SENT:
+        comm.bcast(None, root=0)

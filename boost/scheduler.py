@@ -9,12 +9,8 @@ import sqlite3
 from contextlib import contextmanager
 from dataclasses import replace
 import logging
-import platform as host_platform
-import socket
-import sys
 import time
 from dataclasses import dataclass
-from importlib import metadata as package_metadata
 from pathlib import Path
 
 import numpy as np
@@ -25,6 +21,7 @@ from .engine import PlatformChoice, choose_platform, derive_seeds, prepare_syste
 from .exceptions import BoostError, RunFolderError, SimulationError
 from .exchange import swap_all_pairs, swap_neighbours
 from .protocol import resolve_coordinates
+from .provenance import describe_environment, describe_git
 from .store import (LEDGER, PROTOCOL, PROVENANCE, FolderLock, FrameWriter, Ledger, check_folder_for,
                     read_checkpoint, recorded_last_cycle, write_atomically, write_checkpoint)
 from .systems import load_system
@@ -69,19 +66,13 @@ def make_plan(protocol, *, platform=None, probe=True):
 
 
 def _provenance(plan, seeds, swap_seed):
-    versions = {}
-    for name in ("boost", "openmm", "numpy", "pymbar", "mdtraj", "scipy", "pint"):
-        try:
-            versions[name] = package_metadata.version(name)
-        except package_metadata.PackageNotFoundError:
-            versions[name] = None
     return {
-        "protocol_file": str(plan.protocol.path), "protocol_sha256": plan.protocol.sha256,
+        "protocol_file": str(plan.protocol.path), "protocol_folder": str(plan.protocol.base_dir.resolve()),
+        "protocol_sha256": plan.protocol.sha256, "git": describe_git(plan.protocol.path),
         "seed": plan.protocol.seed, "walker_seeds": seeds, "swap_seed": swap_seed,
         "platform": plan.platform.name, "platform_properties": plan.platform.properties,
         "platform_probe": [list(item) for item in plan.platform.probe],
-        "versions": versions, "python": sys.version.split()[0], "host": socket.gethostname(),
-        "machine": host_platform.platform(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        **describe_environment(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
     }
 
 

@@ -15,6 +15,7 @@ import numpy as np
 
 from .coordinates import compute_coordinate_values_many
 from .engine import Walker
+from .exceptions import SimulationError
 
 
 @dataclass(frozen=True)
@@ -101,15 +102,20 @@ class WalkerHost:
         return {}
 
 
-def spread(n_walkers, n_hosts):
+def spread(indices, n_hosts):
     """Walker indices of each host, dealt round-robin."""
-    return [list(range(h, n_walkers, n_hosts)) for h in range(n_hosts)]
+    indices = list(indices)
+    return [indices[h::n_hosts] for h in range(n_hosts) if indices[h::n_hosts]]
 
 
 class _Workers:
-    """The scheduler's view of all walkers; subclasses say how a command reaches the hosts."""
+    """The scheduler's view of some walkers; subclasses say how a command reaches the hosts.
 
-    n_walkers = 0
+    Commands return dicts keyed by walker index; the methods below turn them into lists
+    in the order of ``indices``.
+    """
+
+    indices = ()
 
     def call(self, command, *args):
         raise NotImplementedError
@@ -123,14 +129,14 @@ class _Workers:
     def propagate(self, n_steps, with_positions=False):
         """Advance every walker ``n_steps``; return their Reports in walker order."""
         reports = self.call("propagate", n_steps, with_positions)
-        return [reports[r] for r in range(self.n_walkers)]
+        return [reports[r] for r in self.indices]
 
     def assign(self, condition_r):
         self.call("assign", dict(enumerate(condition_r)))
 
     def checkpoints(self):
         states = self.call("checkpoints")
-        return [states[r] for r in range(self.n_walkers)]
+        return [states[r] for r in self.indices]
 
     def restore(self, states, condition_r):
         self.call("restore", dict(enumerate(states)), dict(enumerate(condition_r)))
@@ -140,11 +146,11 @@ class _Workers:
 
 
 class SerialWorkers(_Workers):
-    """All walkers in this process, propagated one after another."""
+    """Walkers in this process, propagated one after another."""
 
-    def __init__(self, setup):
-        self.n_walkers = len(setup.seeds)
-        self.host = WalkerHost(setup, range(self.n_walkers))
+    def __init__(self, setup, indices=None):
+        self.indices = list(range(len(setup.seeds)) if indices is None else indices)
+        self.host = WalkerHost(setup, self.indices)
 
     def call(self, command, *args):
         return getattr(self.host, command)(*args)
@@ -152,10 +158,9 @@ class SerialWorkers(_Workers):
 
 def _serve_pipe(connection, setup, indices):
     """Child process: build the walkers, then answer commands until told to stop."""
-    os.environ.setdefault("OPENMM_CPU_THREADS", "1")
     try:
         host = WalkerHost(setup, indices)
-        connection.send(("ready", None))
+        connection.send(("ok", {}))
     except Exception as err:  # report any failure to build to the parent
         connection.send(("error", err))
         return
@@ -170,27 +175,43 @@ def _serve_pipe(connection, setup, indices):
 
 
 class ProcessWorkers(_Workers):
-    """Walkers spread over child processes on this machine (spawned, so no OpenMM state is forked)."""
+    """Walkers in child processes on this machine, ``layout`` listing each child's walkers.
 
-    def __init__(self, setup, n_processes):
-        self.n_walkers = len(setup.seeds)
-        context = multiprocessing.get_context("spawn")
+    Children come from a fork server that starts clean (no OpenMM context or thread pool
+    is ever forked) with boost's worker module preloaded, so they start quickly.
+    """
+
+    def __init__(self, setup, layout):
+        self.indices = sorted(r for group in layout for r in group)
+        context = multiprocessing.get_context("forkserver")
+        context.set_forkserver_preload(["boost.workers"])
         self.connections, self.processes = [], []
-        for indices in spread(self.n_walkers, n_processes):
-            parent, child = context.Pipe()
-            process = context.Process(target=_serve_pipe, args=(child, setup, indices), daemon=True)
-            process.start()
-            self.connections.append(parent)
-            self.processes.append(process)
-        self._collect()
+        try:
+            for indices in layout:
+                parent, child = context.Pipe()
+                process = context.Process(target=_serve_pipe, args=(child, setup, indices), daemon=True)
+                process.start()
+                child.close()
+                self.connections.append(parent)
+                self.processes.append(process)
+            self._collect()
+        except BaseException:
+            self.close()
+            raise
 
     def _collect(self):
-        merged = {}
+        merged, failure = {}, None
         for connection in self.connections:
-            status, value = connection.recv()
+            try:
+                status, value = connection.recv()
+            except EOFError:
+                status, value = "error", SimulationError("a worker process died unexpectedly")
             if status == "error":
-                raise value
-            merged.update(value or {})
+                failure = failure or value
+            else:
+                merged.update(value)
+        if failure is not None:
+            raise failure
         return merged
 
     def call(self, command, *args):
@@ -204,6 +225,7 @@ class ProcessWorkers(_Workers):
                 connection.send(("stop", ()))
             except OSError:
                 pass
+        for process in self.processes:
             process.join(timeout=10)
             if process.is_alive():
                 process.kill()
@@ -214,19 +236,26 @@ class ProcessWorkers(_Workers):
 MPI_SETUP_SENT = set()
 
 
-class MPIWorkers(_Workers):
-    """Walkers spread over MPI ranks; rank 0 runs the scheduler and hosts walkers too."""
+def rank_walkers(n_walkers, comm, rank):
+    return list(range(rank, n_walkers, comm.size))
 
-    def __init__(self, setup, comm):
+
+class MPIWorkers(_Workers):
+    """Walkers spread over MPI ranks; rank 0 runs the scheduler and hosts walkers too.
+
+    Each rank keeps its walkers in local workers (processes where the platform needs them).
+    """
+
+    def __init__(self, setup, comm, count):
         self.comm = comm
-        self.n_walkers = len(setup.seeds)
-        comm.bcast(setup, root=0)
+        self.indices = list(range(len(setup.seeds)))
+        comm.bcast((setup, count), root=0)
         MPI_SETUP_SENT.add(id(comm))
         self.host = None
-        self._gather(lambda: self._build(setup))
+        self._gather(lambda: self._build(setup, count))
 
-    def _build(self, setup):
-        self.host = WalkerHost(setup, spread(self.n_walkers, self.comm.size)[0])
+    def _build(self, setup, count):
+        self.host = local_workers(setup, rank_walkers(len(self.indices), self.comm, 0), count)
         return {}
 
     def _gather(self, work):
@@ -234,60 +263,87 @@ class MPIWorkers(_Workers):
             mine = ("ok", work())
         except Exception as err:  # gathered like the other ranks' failures, so none is left waiting
             mine = ("error", err)
-        merged = {}
+        merged, failure = {}, None
         for status, value in self.comm.gather(mine, root=0):
             if status == "error":
-                raise value
-            merged.update(value or {})
+                failure = failure or value
+            else:
+                merged.update(value)
+        if failure is not None:
+            raise failure
         return merged
 
     def call(self, command, *args):
         self.comm.bcast((command, args), root=0)
-        return self._gather(lambda: getattr(self.host, command)(*args))
+        return self._gather(lambda: self.host.call(command, *args))
 
     def close(self):
         self.comm.bcast(("stop", ()), root=0)
+        if self.host is not None:
+            self.host.close()
 
 
 def serve_mpi_rank(comm):
     """Ranks above 0: receive the setup, host walkers, answer commands until told to stop."""
-    setup = comm.bcast(None, root=0)
-    if setup is None:          # rank 0 stopped before the run started (bad input, run complete)
+    message = comm.bcast(None, root=0)
+    if message is None:        # rank 0 stopped before the run started (bad input, run complete)
         return
+    setup, count = message
     try:
-        host = WalkerHost(setup, spread(len(setup.seeds), comm.size)[comm.rank])
+        host = local_workers(setup, rank_walkers(len(setup.seeds), comm, comm.rank), count)
         comm.gather(("ok", {}), root=0)
     except Exception as err:
         comm.gather(("error", err), root=0)
         return
-    while True:
-        command, args = comm.bcast(None, root=0)
-        if command == "stop":
-            return
-        try:
-            comm.gather(("ok", getattr(host, command)(*args)), root=0)
-        except Exception as err:
-            comm.gather(("error", err), root=0)
+    try:
+        while True:
+            command, args = comm.bcast(None, root=0)
+            if command == "stop":
+                return
+            try:
+                comm.gather(("ok", host.call(command, *args)), root=0)
+            except Exception as err:
+                comm.gather(("error", err), root=0)
+    finally:
+        host.close()
 
 
-def default_worker_count(n_walkers, threads_per_walker=1):
-    """As many processes as cores allow, never more than walkers."""
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
-    return max(1, min(n_walkers, cores // max(1, threads_per_walker)))
+def available_cores():
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
+
+
+def shares_random_stream(platform):
+    """Whether all contexts of a process draw from one random stream on ``platform``.
+
+    OpenMM's Reference platform does (seen here: two contexts stepped in turn follow other
+    trajectories than one alone); the CPU platform keeps one stream per context.
+    """
+    return platform.name == "Reference"
+
+
+def local_workers(setup, indices, count):
+    """Workers for walkers ``indices`` on this machine.
+
+    count : int or 'auto' -- processes to spread the walkers over ('auto': one per core).
+    Where contexts share a random stream, every walker gets a process of its own whatever
+    ``count``, so a result never depends on how walkers were laid out.
+    """
+    indices = list(indices)
+    if len(indices) == 1:
+        return SerialWorkers(setup, indices)
+    if shares_random_stream(setup.platform):
+        return ProcessWorkers(setup, [[r] for r in indices])
+    threads = int(setup.platform.properties.get("Threads", 1))
+    n = max(1, available_cores() // threads) if count == "auto" else int(count)
+    n = min(n, len(indices))
+    return SerialWorkers(setup, indices) if n == 1 else ProcessWorkers(setup, spread(indices, n))
 
 
 def open_workers(setup, count, comm=None):
-    """Workers for a run: MPI ranks when ``comm`` spans several, else ``count`` processes.
-
-    count : int or 'auto' ('auto': one process per core, never more than walkers; one
-            walker or one core means no child process at all)
-    """
+    """Workers for a run: spread over MPI ranks when ``comm`` spans several, else local."""
     if comm is not None and comm.size > 1:
-        return MPIWorkers(setup, comm)
-    n_walkers = len(setup.seeds)
-    threads = int(setup.platform.properties.get("Threads", 1)) if setup.platform.name == "CPU" else 1
-    n = default_worker_count(n_walkers, threads) if count == "auto" else min(int(count), n_walkers)
-    return SerialWorkers(setup) if n <= 1 else ProcessWorkers(setup, n)
+        return MPIWorkers(setup, comm, count)
+    return local_workers(setup, range(len(setup.seeds)), count)
 
 
 def mpi_world():

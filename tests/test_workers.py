@@ -1,0 +1,85 @@
+"""Walkers in processes and on MPI ranks give the same ledger as walkers in this process."""
+
+import os
+import shutil
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from boost.protocol import load_protocol
+from boost.scheduler import run_protocol
+from boost.store import read_ledger
+from boost.workers import spread
+
+# Four walkers that swap temperatures, so any difference in any walker shows everywhere.
+LADDER = """\
+protocol: 1
+title: four temperatures on a double well
+system: double-well-high
+seed: 8
+temperature: 300 K
+timestep: 2 fs
+platform: PLATFORM
+coordinates:
+  x: {position: 0, axis: x}
+temperatures: {lowest: 300 K, highest: 900 K, count: 4}
+exchange: {scheme: neighbours}
+run: {cycle: 0.2 ps, equilibration: 2 ps, production: 10 ps, frame_interval: 2 ps}
+"""
+
+
+def ledger_arrays(folder):
+    data = read_ledger(folder)
+    return data.u_krt, data.condition_rt, data.values_rtc
+
+
+def assert_same(a, b):
+    for x, y in zip(ledger_arrays(a), ledger_arrays(b)):
+        assert np.array_equal(x, y)
+
+
+@pytest.mark.parametrize("platform", ["Reference", "{name: CPU, threads: 1}"])
+def test_same_seed_same_result_whatever_the_worker_count(tmp_path, platform):
+    # deterministic platforms (Reference; CPU with DeterministicForces) — DESIGN.md, measured
+    (tmp_path / "p.yaml").write_text(LADDER.replace("PLATFORM", platform))
+    protocol = load_protocol(tmp_path / "p.yaml")
+    one = run_protocol(protocol, tmp_path / "one", progress=False, workers=1)
+    two = run_protocol(protocol, tmp_path / "two", progress=False, workers=2)
+    three = run_protocol(protocol, tmp_path / "three", progress=False, workers=3)
+    assert_same(one, two)
+    assert_same(one, three)
+
+
+def test_spread_deals_walkers_round_robin():
+    assert spread(range(5), 2) == [[0, 2, 4], [1, 3]]
+    assert spread(range(2), 4) == [[0], [1]]
+
+
+def _mpiexec():
+    try:
+        import mpi4py  # noqa: F401
+    except ImportError:
+        return None
+    return shutil.which("mpiexec", path=os.path.dirname(sys.executable) + os.pathsep + os.environ.get("PATH", ""))
+
+
+@pytest.mark.skipif(_mpiexec() is None, reason="needs the mpi extra: pip install -e '.[mpi]'")
+@pytest.mark.parametrize("platform", ["Reference", "{name: CPU, threads: 1}"])
+def test_two_mpi_ranks_equal_the_local_run(tmp_path, platform):
+    (tmp_path / "p.yaml").write_text(LADDER.replace("PLATFORM", platform))
+    local = run_protocol(load_protocol(tmp_path / "p.yaml"), tmp_path / "local", progress=False, workers=1)
+    command = [_mpiexec(), "-n", "2", sys.executable, "-m", "boost.cli", "run", "p.yaml", "-o", "mpi", "--quiet"]
+    result = subprocess.run(command, cwd=tmp_path, capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr
+    assert_same(local, tmp_path / "mpi")
+
+
+@pytest.mark.skipif(_mpiexec() is None, reason="needs the mpi extra: pip install -e '.[mpi]'")
+def test_bad_protocol_under_mpi_is_one_line_and_no_rank_hangs(tmp_path):
+    (tmp_path / "p.yaml").write_text(LADDER.replace("PLATFORM", "Reference").replace("seed: 8", "seed: -8"))
+    command = [_mpiexec(), "-n", "2", sys.executable, "-m", "boost.cli", "run", "p.yaml", "--quiet"]
+    result = subprocess.run(command, cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert result.returncode != 0
+    assert "seed must be a whole number of at least 0" in result.stderr and "Traceback" not in result.stderr

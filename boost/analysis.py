@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .conditions import compute_unbiased_reduced_potential
+from .conditions import compute_reduced_potentials, compute_unbiased_reduced_potential
 from .diagnostics import summarise_swaps, warn_poor_overlap
 from .exceptions import AnalysisError, ConvergenceWarning
 from .protocol import parse_protocol
@@ -77,7 +77,7 @@ def load_run(folder):
     """The protocol copy and ledger of a run folder."""
     from pathlib import Path
 
-    data = read_ledger(folder)
+    data = read_ledger(folder, reduced=False)
     path = Path(folder) / PROTOCOL
     protocol = parse_protocol(path.read_text(encoding="utf-8"), path)
     return protocol, data
@@ -152,13 +152,27 @@ def _gather(array_rt, picks):
 
 def _decorrelation_series(data, k, walkers, cycles, protocol):
     """Observables whose correlation time bounds the sample spacing in condition k."""
-    series = [data.u_krt[k, walkers, cycles]]
+    series = [compute_sample_reduced_potentials(data, protocol, [data.conditions[k]], walkers, cycles)[0]]
     watched = {a.coordinate for a in protocol.umbrella} | {c for b in protocol.basins.values() for c in b}
     for c, name in enumerate(data.coordinate_names):
         if name in watched:
             values = data.values_rtc[walkers, cycles, c]
             series += [np.cos(values), np.sin(values)] if data.metadata["periodic"][c] else [values]
     return series
+
+
+def compute_sample_reduced_potentials(data, protocol, conditions, walkers, cycles):
+    """u_kn for the samples (walkers[n], cycles[n]) in ``conditions``, from energies and values.
+
+    The same formula the run used (boost.conditions), so it equals the ledger's stored
+    reduced potentials; computing only the kept samples saves memory.
+    """
+    umbrella = data.metadata["umbrella"]
+    columns = [data.coordinate_names.index(name) for name in umbrella]
+    periodic = [data.metadata["periodic"][c] for c in columns]
+    values = data.values_rtc[walkers, cycles][:, columns]
+    return compute_reduced_potentials(conditions, data.potential_rt[walkers, cycles], values, periodic,
+                                      volume_r=data.volume_rt[walkers, cycles], pressure=protocol.pressure)
 
 
 def select_samples(data, protocol, folder):
@@ -182,7 +196,9 @@ def select_samples(data, protocol, folder):
         picks.append((walker_t[keep], production[keep]))
         t0_k.append(t0)
         g_k.append(g)
-    u_kn = np.concatenate([data.u_krt[:, walkers, cycles] for walkers, cycles in picks], axis=1)
+    walkers_n = np.concatenate([w for w, _ in picks])
+    cycles_n = np.concatenate([c for _, c in picks])
+    u_kn = compute_sample_reduced_potentials(data, protocol, data.conditions, walkers_n, cycles_n)
     N_k = np.array([len(w) for w, _ in picks])
     return {"u_kn": u_kn, "N_k": N_k, "picks": picks, "t0_k": np.array(t0_k), "g_k": np.array(g_k)}
 

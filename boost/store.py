@@ -189,43 +189,55 @@ def recorded_last_cycle(folder):
     return -1 if value is None else value
 
 
-def read_ledger(folder):
-    """Read a run folder's ledger (complete cycles only) into arrays."""
+def read_ledger(folder, *, reduced=True):
+    """Read a run folder's ledger (complete cycles only) into arrays.
+
+    ``reduced=False`` leaves ``u_krt`` empty (shape (n_conditions, n_walkers, 0)): the
+    analysis recomputes reduced potentials for the samples it keeps, which needs far less
+    memory than all of them.
+    """
     path = Path(folder) / LEDGER
     if not path.is_file():
         raise RunFolderError(f"{folder}: is not a run folder (no {LEDGER}).")
     connection = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
     try:
-        return _read(connection)
+        connection.execute("BEGIN")          # one snapshot, even while the run goes on writing
+        return _read(connection, reduced)
     except sqlite3.DatabaseError as err:
         raise RunFolderError(f"{path}: cannot be read as a ledger ({err}).") from None
     finally:
         connection.close()
 
 
-def _read(connection):
+def _read(connection, with_reduced):
     metadata = {k: json.loads(v) for k, v in connection.execute("SELECT key, value FROM meta")}
     conditions = tuple(Condition(i, t, tuple(json.loads(c)), tuple(json.loads(s)))
                        for i, t, c, s in connection.execute("SELECT * FROM conditions ORDER BY condition"))
     names = tuple(metadata["coordinates"])
     cycles = np.array(connection.execute("SELECT cycle, time, production FROM cycles ORDER BY cycle").fetchall(),
                       dtype=float).reshape(-1, 3)
-    n_walkers = metadata["n_walkers"]
-    n_cycles = len(cycles)
+    n_walkers, n_cycles, n_conditions = metadata["n_walkers"], len(cycles), len(conditions)
+    table = np.empty((n_cycles, n_walkers, 3 + len(names)))
+    u_trk = np.empty((n_cycles if with_reduced else 0, n_walkers, n_conditions))
     quoted = "".join(f', "{name}"' for name in names)
-    rows = connection.execute(
-        f"SELECT condition, potential, volume{quoted}, reduced FROM samples ORDER BY cycle, walker").fetchall()
-    rows = rows[: n_cycles * n_walkers]
-    table = np.array([row[:-1] for row in rows], dtype=float).reshape(n_cycles, n_walkers, 3 + len(names))
-    reduced = np.frombuffer(b"".join(row[-1] for row in rows), dtype="<f8")
-    u_krt = reduced.reshape(n_cycles, n_walkers, len(conditions)).transpose(2, 1, 0)
-    swaps = np.array(connection.execute("SELECT * FROM swaps ORDER BY cycle").fetchall(), dtype=int).reshape(-1, 5)
+    reduced = ", reduced" if with_reduced else ""
+    cursor = connection.execute(f"SELECT cycle, walker, condition, potential, volume{quoted}{reduced} "
+                                f"FROM samples WHERE cycle < ? ORDER BY cycle, walker", (n_cycles,))
+    while rows := cursor.fetchmany(20000):   # streamed: memory stays that of the arrays
+        t = np.array([row[0] for row in rows])
+        r = np.array([row[1] for row in rows])
+        stop = None if not with_reduced else -1
+        table[t, r] = np.array([row[2:stop] for row in rows], dtype=float)
+        if with_reduced:
+            u_trk[t, r] = np.frombuffer(b"".join(row[-1] for row in rows), dtype="<f8").reshape(len(rows), -1)
+    swaps = np.array(connection.execute("SELECT * FROM swaps WHERE cycle < ? ORDER BY cycle", (n_cycles,)).fetchall(),
+                     dtype=int).reshape(-1, 5)
     return LedgerData(
         conditions=conditions, coordinate_names=names,
         cycle_t=cycles[:, 0].astype(int), time_t=cycles[:, 1], production_t=cycles[:, 2].astype(bool),
-        condition_rt=table[:, :, 0].T.astype(int), potential_rt=table[:, :, 1].T,
-        volume_rt=table[:, :, 2].T, values_rtc=table[:, :, 3:].transpose(1, 0, 2),
-        u_krt=np.ascontiguousarray(u_krt), swaps=swaps, metadata=metadata)
+        condition_rt=table[:, :, 0].T.astype(int), potential_rt=np.ascontiguousarray(table[:, :, 1].T),
+        volume_rt=np.ascontiguousarray(table[:, :, 2].T), values_rtc=np.ascontiguousarray(table[:, :, 3:].transpose(1, 0, 2)),
+        u_krt=np.ascontiguousarray(u_trk.transpose(2, 1, 0)), swaps=swaps, metadata=metadata)
 
 
 _DCD_HEADER = 276   # bytes OpenMM's DCDFile writes before the first frame

@@ -105,3 +105,17 @@ def test_unbiased_low_barrier_populations_match_quadrature(tmp_path, write_proto
     for i, name in enumerate(basins.names):
         error = abs(basins.populations[i] - exact[name])
         assert error < 4 * basins.d_populations[i] and error < 0.05, (name, basins.populations[i], exact[name])
+
+
+def test_analysis_recomputes_the_reduced_potentials_the_run_stored(tmp_path, write_protocol, double_well_text):
+    # two implementations cross-checked: the run's stored u_k and the analysis' recomputation
+    from boost.analysis import compute_sample_reduced_potentials
+
+    text = double_well_text + "umbrella:\n  x: {centres: [-0.1 nm, 0 nm, 0.1 nm], spring: 2000 kJ/mol/nm**2}\n" \
+        "temperatures: [300 K, 350 K]\n"
+    protocol = load_protocol(write_protocol(text))
+    folder = run_protocol(protocol, tmp_path / "run", progress=False)
+    data = read_ledger(folder)
+    walkers, cycles = np.meshgrid(np.arange(6), np.arange(60), indexing="ij")
+    u_kn = compute_sample_reduced_potentials(data, protocol, data.conditions, walkers.ravel(), cycles.ravel())
+    assert np.array_equal(u_kn, data.u_krt.reshape(6, -1))

@@ -156,6 +156,38 @@ class SerialWorkers(_Workers):
         return getattr(self.host, command)(*args)
 
 
+def merge_replies(replies):
+    """Merge hosts' ('ok', {walker: value}) replies; raise the first ('error', exception)."""
+    merged, failure = {}, None
+    for status, value in list(replies):
+        if status == "error":
+            failure = failure or value
+        else:
+            merged.update(value)
+    if failure is not None:
+        raise failure
+    return merged
+
+
+def answer_commands(host, receive, reply):
+    """Serve ``host``: carry out each received (command, args) until 'stop', replying to each."""
+    while True:
+        command, args = receive()
+        if command == "stop":
+            return
+        try:
+            reply(("ok", getattr(host, command)(*args)))
+        except Exception as err:  # sent back and raised where the command came from
+            reply(("error", err))
+
+
+def _receive(connection):
+    try:
+        return connection.recv()
+    except EOFError:
+        return "error", SimulationError("a worker process died unexpectedly")
+
+
 def _serve_pipe(connection, setup, indices):
     """Child process: build the walkers, then answer commands until told to stop."""
     try:
@@ -164,14 +196,7 @@ def _serve_pipe(connection, setup, indices):
     except Exception as err:  # report any failure to build to the parent
         connection.send(("error", err))
         return
-    while True:
-        command, args = connection.recv()
-        if command == "stop":
-            return
-        try:
-            connection.send(("ok", getattr(host, command)(*args)))
-        except Exception as err:  # sent back and raised in the scheduler
-            connection.send(("error", err))
+    answer_commands(host, connection.recv, connection.send)
 
 
 class ProcessWorkers(_Workers):
@@ -200,19 +225,7 @@ class ProcessWorkers(_Workers):
             raise
 
     def _collect(self):
-        merged, failure = {}, None
-        for connection in self.connections:
-            try:
-                status, value = connection.recv()
-            except EOFError:
-                status, value = "error", SimulationError("a worker process died unexpectedly")
-            if status == "error":
-                failure = failure or value
-            else:
-                merged.update(value)
-        if failure is not None:
-            raise failure
-        return merged
+        return merge_replies(_receive(connection) for connection in self.connections)
 
     def call(self, command, *args):
         for connection in self.connections:
@@ -263,15 +276,7 @@ class MPIWorkers(_Workers):
             mine = ("ok", work())
         except Exception as err:  # gathered like the other ranks' failures, so none is left waiting
             mine = ("error", err)
-        merged, failure = {}, None
-        for status, value in self.comm.gather(mine, root=0):
-            if status == "error":
-                failure = failure or value
-            else:
-                merged.update(value)
-        if failure is not None:
-            raise failure
-        return merged
+        return merge_replies(self.comm.gather(mine, root=0))
 
     def call(self, command, *args):
         self.comm.bcast((command, args), root=0)
@@ -296,16 +301,19 @@ def serve_mpi_rank(comm):
         comm.gather(("error", err), root=0)
         return
     try:
-        while True:
-            command, args = comm.bcast(None, root=0)
-            if command == "stop":
-                return
-            try:
-                comm.gather(("ok", host.call(command, *args)), root=0)
-            except Exception as err:
-                comm.gather(("error", err), root=0)
+        answer_commands(_HostCalls(host), lambda: comm.bcast(None, root=0), lambda r: comm.gather(r, root=0))
     finally:
         host.close()
+
+
+class _HostCalls:
+    """Commands by name on local workers (which take them through ``call``)."""
+
+    def __init__(self, workers):
+        self.workers = workers
+
+    def __getattr__(self, command):
+        return lambda *args: self.workers.call(command, *args)
 
 
 def available_cores():

@@ -37,16 +37,21 @@ def _construct_mapping(loader, node, deep=False):
     if not isinstance(node, yaml.MappingNode):  # '!!map' on a scalar or a list
         raise yaml.constructor.ConstructorError(
             None, None, f"expected a mapping, but found {node.id}", node.start_mark)
+    # Keys written here must be distinct; keys merged in with '<<' may be overridden by them.
+    own = [(key_node, key_node.tag == "tag:yaml.org,2002:merge") for key_node, _ in node.value]
     loader.flatten_mapping(node)
-    seen = {}
     for key_node, _ in node.value:
         key = loader.construct_object(key_node, deep=deep)
         if not isinstance(key, (str, int, float, bool)) and key is not None:
             raise yaml.constructor.ConstructorError(
                 None, None, "keys must be plain text", key_node.start_mark)
+    seen = {}
+    for key_node, is_merge in own:
+        key = ("<<",) if is_merge else loader.construct_object(key_node, deep=deep)  # no text equals ("<<",)
         if key in seen:
+            shown = "'<<'" if is_merge else show_value(key)
             raise yaml.constructor.ConstructorError(
-                None, None, f"duplicate key {key!r}", key_node.start_mark)
+                None, None, f"duplicate key {shown}", key_node.start_mark)
         seen[key] = True
     return loader.construct_mapping(node, deep=deep)
 
@@ -111,8 +116,8 @@ class Node:
     def _child_path(self, key):
         if isinstance(key, int) and not isinstance(key, bool):
             return f"{self.path}[{show_value(key)}]"
-        if isinstance(key, str) and not (key.isprintable() and len(key) <= 80):
-            return f"{self.path}[{show_value(key)}]"  # keeps the message on one short line
+        if isinstance(key, str) and not (key.isprintable() and 0 < len(key) <= 80 and key.strip() == key):
+            return f"{self.path}[{show_value(key)}]"  # keeps the message on one short, visible line
         return f"{self.path}.{key}" if self.path else str(key)
 
     # -- mappings ---------------------------------------------------------------------

@@ -17,6 +17,7 @@ from .conditions import compute_reduced_potentials, compute_unbiased_reduced_pot
 from .diagnostics import summarise_swaps, warn_poor_overlap
 from .exceptions import AnalysisError, ConvergenceWarning
 from .protocol import parse_protocol
+from .spec import read_text
 from .reweight import Reweighting, decorrelate
 from pymbar import timeseries  # imported quietly by .reweight first
 from .store import PROTOCOL, read_ledger
@@ -79,7 +80,7 @@ def load_run(folder):
 
     data = read_ledger(folder, reduced=False)
     path = Path(folder) / PROTOCOL
-    protocol = parse_protocol(path.read_text(encoding="utf-8"), path)
+    protocol = parse_protocol(read_text(path, "protocol copy"), path)
     return protocol, data
 
 

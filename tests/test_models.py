@@ -69,7 +69,7 @@ def test_read_model_defaults_in_md_units():
     surface = model(name="muller_brown", length_scale="10 angstrom", energy_scale="1 kcal/mol")
     assert surface.length_scale == pytest.approx(1.0)
     assert surface.energy_scale == pytest.approx(4.184)
-    assert set(MODEL_NAMES) == {"double_well", "muller_brown"}
+    assert set(MODEL_NAMES) == {"double_well", "muller_brown", "harmonic_well"}
 
 
 @pytest.mark.parametrize("spec, pattern", [

@@ -19,7 +19,7 @@ from openmm import app, unit
 from .exceptions import ProtocolError, SimulationError
 
 # Backbone, Engh & Huber 1991, general / Gly / Pro values, in Å and degrees. Recalled,
-# then checked against a third-party transcription of the table (not the paper itself).
+# then checked against a third-party copy of the table (not the paper itself).
 _N_CA = {"GLY": 1.451, "PRO": 1.466}, 1.458
 _CA_C = {"GLY": 1.516}, 1.525
 _C_N = {"PRO": 1.341}, 1.329  # keyed by the residue that owns the N
@@ -40,7 +40,7 @@ _CB_DEFAULT = (1.530, 110.5, 110.1)
 # Side chains beyond CB, one atom per entry: "NAME A B PARENT bond angle dihedral",
 # placed bonded to PARENT with angle B-PARENT-NAME and dihedral A-B-PARENT-NAME.
 # Bond lengths and angles: Engh & Huber 1991, values from memory (cross-checked against a
-# transcription of the table; the tests compare them with amber14's equilibrium values).
+# copy of the table; the tests compare them with amber14's equilibrium values).
 # Dihedrals: planar groups at 0/180 degrees, chi angles at common rotamers (common
 # practice); minimisation settles both.
 _SIDE_CHAINS = {

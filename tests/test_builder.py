@@ -50,7 +50,7 @@ def _minimise(topology, positions, files, iterations=500):
 
 # source: Engh & Huber, Acta Cryst. A47, 392 (1991), table of protein bond lengths (Å)
 # and angles (degrees), published; general, Gly and Pro rows (the Gly/Pro rows and the
-# pre-Pro O=C-N 122.0 are values from memory, cross-checked against a transcription).
+# pre-Pro O=C-N 122.0 are values from memory, cross-checked against a copy of the table).
 EH_N_CA = {"GLY": 1.451, "PRO": 1.466}
 EH_CA_C = {"GLY": 1.516}
 EH_C_N_CA = {"GLY": 120.6, "PRO": 122.6}

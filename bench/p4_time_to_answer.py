@@ -20,7 +20,10 @@ wall time of a prefix ending at cycle c is plan + setup + loop time × (c + 1) /
 (the loop runs at a steady rate). Time to answer = the earliest prefix from which every
 later prefix stays within the tolerance ('first within' is reported too). A method that
 never gets there has time > its run's wall time, and a ratio against it is a lower
-bound, marked '>'.
+bound, marked '>'. Plain MD prefixes are analysed from the longest down, each in a
+subprocess with a time limit, and only until one misses (shorter ones cannot change
+its time to answer; its 'first within' covers the analysed prefixes only). Prefixes in
+which a basin was never visited have no ΔG and are not analysed.
 
 Target: each enhanced method answers >= 10x sooner than plain MD.
 

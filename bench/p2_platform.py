@@ -108,12 +108,16 @@ def main():
             rows = []
             for label, _, _ in SETTINGS:
                 first = detail[label, 0]
-                layout = f"{first['platform'].name} {first['platform'].properties or ''}".strip()
+                used = [detail[label, t]["platform"] for t in range(args.trials)]
+                layout = " / ".join(dict.fromkeys(f"{u.name} {u.properties or ''}".strip() for u in used))
                 rows.append((label, layout, " / ".join(f"{v:.0f}" for v in rates[label]), f"{medians[label]:.0f}",
                              f"{medians[label] / medians[best_label]:.3f}", f"{first['plan_s']:.1f}",
                              f"{first['setup_s']:.1f}"))
+            probes = [" / ".join(f"{k} {v:.0f}" for k, v in detail[SETTINGS[0][0], t]["platform"].probe)
+                      for t in range(args.trials)]
+            print(f"{system}: the default run's own probes (steps/s): " + "; ".join(probes))
             print()
-            benchlib.print_table(("setting", "platform used", "steps/s per trial", "median steps/s",
+            benchlib.print_table(("setting", "platform used (per trial)", "steps/s per trial", "median steps/s",
                                   "vs best forced", "plan s", "setup s"), rows)
             ratio = medians[SETTINGS[0][0]] / medians[best_label]
             summary.append((system, best_label, ratio))

@@ -62,12 +62,9 @@ def cost_breakdown(scheduler, plan, folder):
     steps = plan.protocol.run.steps_per_cycle
     rows = [("MD: integrator.step, all walkers", per_call_cpu_us(lambda: walker.integrator.step(steps), 20) * n)]
     rows.append(("worker: getState + numpy positions (observe)", per_call_cpu_us(walker.observe, 300) * n))
-    observation = walker.observe()
-    from boost.coordinates import compute_coordinate_values_many
-    setup = host.setup
-    rows.append(("worker: coordinate values in numpy", per_call_cpu_us(
-        lambda: compute_coordinate_values_many(setup.coordinates, observation.positions, setup.masses,
-                                               observation.box_vectors), 300) * n))
+    observations = {r: w.observe() for r, w in host.walkers.items()}
+    rows.append(("worker: coordinate values in numpy (all walkers at once)", per_call_cpu_us(
+        lambda: host._coordinate_values(observations), 300)))
     reports = [host.propagate(0, False)[r] for r in range(n)]
     import pickle
     rows.append(("pipes: pickle + unpickle the reports", per_call_cpu_us(
@@ -97,7 +94,7 @@ def layout_probe(scheduler, n_cycles):
     """Seconds (wall, CPU) to propagate all walkers n_cycles through boost.workers layouts.
 
     Diagnostic only (not the target): the same walkers in this process, in one worker
-    process, and one process per walker (what the scheduler uses on Reference).
+    process, and one process per walker.
     """
     from boost.workers import ProcessWorkers, SerialWorkers
 
@@ -107,6 +104,8 @@ def layout_probe(scheduler, n_cycles):
     layouts = [("all walkers in the driver process", lambda: SerialWorkers(setup)),
                ("all walkers in one worker process", lambda: ProcessWorkers(setup, [list(range(n))])),
                ("one worker process per walker", lambda: ProcessWorkers(setup, [[r] for r in range(n)]))]
+    # boost uses the first two (workers=1 on one core: the first); the third shows what
+    # process switching alone costs when walkers outnumber cores.
     rows = []
     for name, make in layouts:
         workers = make()

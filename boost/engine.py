@@ -6,6 +6,7 @@ from that energy and the coordinate values (boost.conditions), with no re-evalua
 """
 
 import time
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import numpy as np
@@ -103,6 +104,20 @@ def _measure_speed(system, positions, name, properties, timestep, seconds):
     return rate
 
 
+BAROSTATS = (openmm.MonteCarloBarostat, openmm.MonteCarloAnisotropicBarostat,
+             openmm.MonteCarloMembraneBarostat, openmm.MonteCarloFlexibleBarostat)
+
+
+def shares_random_stream(platform_name, system):
+    """Whether the contexts of one process draw from one process-wide random stream.
+
+    OpenMM's Reference platform does for its integrators, and Monte Carlo barostats do on
+    every platform (seen here: two Reference contexts stepped in turn follow other
+    trajectories than one alone). The CPU platform's integrators keep a stream per context.
+    """
+    return platform_name == "Reference" or any(isinstance(f, BAROSTATS) for f in system.getForces())
+
+
 @dataclass(frozen=True)
 class Observation:
     """What a walker reports after propagating: energies without umbrellas."""
@@ -135,7 +150,10 @@ class Walker:
         self.index = index
         self.umbrella_names = umbrella_names
         self.uses_pbc = system.usesPeriodicBoundaryConditions()
-        self.has_barostat = any(isinstance(f, openmm.MonteCarloBarostat) for f in system.getForces())
+        self.has_barostat = any(isinstance(f, BAROSTATS) for f in system.getForces())
+        for force in system.getForces():
+            if isinstance(force, BAROSTATS):     # read when the context is made; 0 would mean 'random'
+                force.setRandomNumberSeed(seed)
         self.integrator = openmm.LangevinMiddleIntegrator(
             condition.temperature * unit.kelvin, friction / unit.picosecond, timestep * unit.picosecond)
         self.integrator.setRandomNumberSeed(seed)
@@ -146,8 +164,21 @@ class Walker:
         if box_vectors is not None:
             self.context.setPeriodicBoxVectors(*[openmm.Vec3(*row) for row in box_vectors])
         self.context.setPositions(positions)
+        # Where the random stream is process-wide, this walker's own place in it travels in
+        # a checkpoint of its context (OpenMM checkpoints hold the random state), swapped in
+        # before and out after everything done to the walker: walkers can then share a
+        # process and each follows the trajectory it would follow alone.
+        self._state = self.context.createCheckpoint() if shares_random_stream(platform.name, system) else None
         self.condition = None
         self.apply(condition)
+
+    @contextmanager
+    def _own_stream(self):
+        if self._state is not None:
+            self.context.loadCheckpoint(self._state)
+        yield
+        if self._state is not None:
+            self._state = self.context.createCheckpoint()
 
     def apply(self, condition):
         """Move this walker to ``condition``: umbrella parameters and temperature.
@@ -155,6 +186,10 @@ class Walker:
         On a temperature change velocities are rescaled by sqrt(T_new/T_old) so the walker
         carries on in equilibrium at the new temperature (common practice).
         """
+        with self._own_stream():
+            self._apply(condition)
+
+    def _apply(self, condition):
         for name, centre, spring in zip(self.umbrella_names, condition.centres, condition.springs):
             self.context.setParameter(centre_parameter(name), centre)
             self.context.setParameter(spring_parameter(name), spring)
@@ -170,20 +205,26 @@ class Walker:
 
     def minimise(self, *, tolerance=10.0, max_iterations=2000):
         """Local energy minimisation in the current condition (tolerance in kJ/mol/nm)."""
-        openmm.LocalEnergyMinimizer.minimize(self.context, tolerance, max_iterations)
+        with self._own_stream():
+            openmm.LocalEnergyMinimizer.minimize(self.context, tolerance, max_iterations)
 
     def draw_velocities(self, seed):
-        self.context.setVelocitiesToTemperature(self.condition.temperature * unit.kelvin, seed)
+        with self._own_stream():
+            self.context.setVelocitiesToTemperature(self.condition.temperature * unit.kelvin, seed)
 
     def step(self, n_steps):
         try:
-            self.integrator.step(n_steps)
+            with self._own_stream():
+                self.integrator.step(n_steps)
         except openmm.OpenMMException as err:
             raise SimulationError(f"walker {self.index} (condition {self.condition.index}) failed in "
                                   f"OpenMM: {str(err).strip()}") from None
 
     def observe(self):
-        state = self.context.getState(getEnergy=True, getPositions=True, groups=PHYSICAL_GROUPS)
+        # Without umbrellas every group is physical; asking for all of them spares OpenMM
+        # a recomputation of the forces at the next step.
+        groups = PHYSICAL_GROUPS if self.umbrella_names else -1
+        state = self.context.getState(getEnergy=True, getPositions=True, groups=groups)
         positions = state.getPositions(asNumpy=True).value_in_unit(unit.nanometer)
         box = volume = None
         if self.uses_pbc:
@@ -194,9 +235,11 @@ class Walker:
 
     def checkpoint(self):
         """OpenMM checkpoint bytes (positions, velocities, box, parameters, RNG states)."""
-        return self.context.createCheckpoint()
+        return self.context.createCheckpoint() if self._state is None else self._state
 
     def restore(self, data, condition):
         self.context.loadCheckpoint(data)
+        if self._state is not None:
+            self._state = data
         self.condition = None
         self.apply(condition)

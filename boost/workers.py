@@ -73,18 +73,31 @@ class WalkerHost:
         return {}
 
     def propagate(self, n_steps, with_positions):
-        reports = {}
+        observations = {}
         for r, walker in self.walkers.items():
             walker.step(n_steps)
-            o = walker.observe()
-            finite = bool(np.isfinite(o.potential) and np.all(np.isfinite(o.positions)))
-            values = compute_coordinate_values_many(self.setup.coordinates, o.positions, self.setup.masses,
-                                                    o.box_vectors)[0] if self.setup.coordinates and finite \
-                else np.full(len(self.setup.coordinates), np.nan)
-            keep = with_positions and finite
-            reports[r] = Report(r, o.potential, values, o.volume, finite,
-                                o.positions if keep else None, o.box_vectors if keep else None)
+            observations[r] = walker.observe()
+        finite = {r: bool(np.isfinite(o.potential) and np.all(np.isfinite(o.positions)))
+                  for r, o in observations.items()}
+        values = self._coordinate_values({r: o for r, o in observations.items() if finite[r]})
+        reports = {}
+        for r, o in observations.items():
+            keep = with_positions and finite[r]
+            reports[r] = Report(r, o.potential, values.get(r, np.full(len(self.setup.coordinates), np.nan)),
+                                o.volume, finite[r], o.positions if keep else None,
+                                o.box_vectors if keep else None)
         return reports
+
+    def _coordinate_values(self, observations):
+        """{walker: values}, computed for all walkers at once (one set of numpy calls)."""
+        if not observations or not self.setup.coordinates:
+            return {r: np.empty(0) for r in observations}
+        walkers = list(observations)
+        xyz = np.stack([observations[r].positions for r in walkers])
+        boxes = None if observations[walkers[0]].box_vectors is None else \
+            np.stack([observations[r].box_vectors for r in walkers])
+        values = compute_coordinate_values_many(self.setup.coordinates, xyz, self.setup.masses, boxes)
+        return dict(zip(walkers, values))
 
     def assign(self, conditions):
         """conditions: dict walker -> condition index."""
@@ -268,7 +281,8 @@ class MPIWorkers(_Workers):
         self._gather(lambda: self._build(setup, count))
 
     def _build(self, setup, count):
-        self.host = local_workers(setup, rank_walkers(len(self.indices), self.comm, 0), count)
+        cores = cores_of_rank(self.comm)
+        self.host = local_workers(setup, rank_walkers(len(self.indices), self.comm, 0), count, cores)
         return {}
 
     def _gather(self, work):
@@ -295,7 +309,8 @@ def serve_mpi_rank(comm):
         return
     setup, count = message
     try:
-        host = local_workers(setup, rank_walkers(len(setup.seeds), comm, comm.rank), count)
+        cores = cores_of_rank(comm)
+        host = local_workers(setup, rank_walkers(len(setup.seeds), comm, comm.rank), count, cores)
         comm.gather(("ok", {}), root=0)
     except Exception as err:
         comm.gather(("error", err), root=0)
@@ -304,6 +319,23 @@ def serve_mpi_rank(comm):
         answer_commands(_HostCalls(host), lambda: comm.bcast(None, root=0), lambda r: comm.gather(r, root=0))
     finally:
         host.close()
+
+
+def cores_of_rank(comm):
+    """Cores for this rank's workers: its own, shared with the ranks of its machine that have the same.
+
+    Collective over ``comm``. Ranks bound to cores of their own keep them; ranks that were
+    not bound (all may use every core) split the machine's cores between them.
+    """
+    from mpi4py import MPI
+
+    mine = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else list(range(os.cpu_count() or 1))
+    machine = comm.Split_type(MPI.COMM_TYPE_SHARED)
+    try:
+        sharing = sum(1 for other in machine.allgather(mine) if other == mine)
+    finally:
+        machine.Free()
+    return max(1, len(mine) // sharing)
 
 
 class _HostCalls:
@@ -320,31 +352,18 @@ def available_cores():
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
 
 
-def shares_random_stream(platform):
-    """Whether all contexts of a process draw from one random stream on ``platform``.
-
-    OpenMM's Reference platform does (seen here: two contexts stepped in turn follow other
-    trajectories than one alone); the CPU platform keeps one stream per context.
-    """
-    return platform.name == "Reference"
-
-
-def local_workers(setup, indices, count):
+def local_workers(setup, indices, count, cores=None):
     """Workers for walkers ``indices`` on this machine.
 
-    count : int or 'auto' -- processes to spread the walkers over ('auto': one per core).
-    Where contexts share a random stream, every walker gets a process of its own whatever
-    ``count``, so a result never depends on how walkers were laid out.
+    count : int or 'auto' -- processes to spread the walkers over ('auto': as many as
+    ``cores`` (default: all this process may use) allow at the platform's thread count).
     """
     indices = list(indices)
-    if len(indices) == 1:
-        return SerialWorkers(setup, indices)
-    if shares_random_stream(setup.platform):
-        return ProcessWorkers(setup, [[r] for r in indices])
     threads = int(setup.platform.properties.get("Threads", 1))
-    n = max(1, available_cores() // threads) if count == "auto" else int(count)
+    cores = available_cores() if cores is None else cores
+    n = max(1, cores // threads) if count == "auto" else int(count)
     n = min(n, len(indices))
-    return SerialWorkers(setup, indices) if n == 1 else ProcessWorkers(setup, spread(indices, n))
+    return SerialWorkers(setup, indices) if n <= 1 else ProcessWorkers(setup, spread(indices, n))
 
 
 def open_workers(setup, count, comm=None):

@@ -114,3 +114,68 @@ def test_seeds_are_positive_distinct_and_reproducible():
     assert len(set(seeds + [swap])) == 9 and min(seeds) > 0
     assert derive_seeds(2026, 8) == (seeds, swap)
     assert derive_seeds(2027, 8)[0] != seeds
+
+
+def _positions_after_cycles(walker, other=None):
+    """Walker positions after three cycles of 50 steps; ``other`` (if any) steps in between."""
+    walker.draw_velocities(1)
+    if other is not None:
+        other.draw_velocities(2)
+    trace = []
+    for _ in range(3):
+        if other is not None:
+            other.step(37)
+        walker.step(50)
+        observation = walker.observe()
+        trace.append((observation.positions, observation.box_vectors))
+    return trace
+
+
+def test_walkers_sharing_a_process_follow_the_trajectory_they_follow_alone(alanine):
+    # Reference contexts of one process draw from one random stream (OpenMM's reference
+    # kernels seed a process-wide generator); each walker carries its own place in it.
+    protocol, built, coordinates, system, names = alanine
+    condition = Condition(0, 300.0, (0.0, 0.0), (150.0, 50.0))
+    make = lambda seed: Walker(0, system, names, built.positions, None, condition, timestep=0.002,
+                               friction=1.0, platform=PlatformChoice("Reference", {}), seed=seed)
+    alone = _positions_after_cycles(make(11))
+    first = make(11)
+    shared = _positions_after_cycles(first, other=make(22))
+    assert all(np.array_equal(a[0], b[0]) for a, b in zip(alone, shared))
+
+
+def _argon_box():
+    """125 Lennard-Jones argon atoms in a 3 nm periodic box with a Monte Carlo barostat.
+
+    sigma 0.3405 nm, epsilon 0.996 kJ/mol (argon, value from memory; only a test fluid here).
+    """
+    system = openmm.System()
+    system.setDefaultPeriodicBoxVectors(openmm.Vec3(3, 0, 0), openmm.Vec3(0, 3, 0), openmm.Vec3(0, 0, 3))
+    nonbonded = openmm.NonbondedForce()
+    nonbonded.setNonbondedMethod(openmm.NonbondedForce.CutoffPeriodic)
+    nonbonded.setCutoffDistance(1.0)
+    grid = np.array([(i, j, k) for i in range(5) for j in range(5) for k in range(5)]) * 0.6 + 0.3
+    for _ in grid:
+        system.addParticle(39.948)
+        nonbonded.addParticle(0.0, 0.3405, 0.996)
+    system.addForce(nonbonded)
+    system.addForce(openmm.MonteCarloBarostat(1.0 * unit.bar, 120 * unit.kelvin, 5))
+    return system, grid
+
+
+def test_barostat_runs_repeat_with_the_seed_and_whatever_shares_the_process():
+    # A barostat left at seed 0 draws a fresh seed per context (OpenMM docs); ours get the
+    # walker's seed, and barostat moves draw from a process-wide stream (as above).
+    system, grid = _argon_box()
+    box = np.diag([3.0, 3.0, 3.0])
+    platform = PlatformChoice("CPU", {"Threads": "1", "DeterministicForces": "true"})
+    make = lambda seed: Walker(0, system, (), grid, box, Condition(0, 120.0, (), ()), timestep=0.005,
+                               friction=1.0, platform=platform, seed=seed)
+    alone = _positions_after_cycles(make(5))
+    again = _positions_after_cycles(make(5))
+    first = make(5)
+    shared = _positions_after_cycles(first, other=make(6))
+    volumes = [np.linalg.det(b) for _, b in alone]
+    assert len(set(volumes)) > 1                     # the barostat did move the box
+    for other in (again, shared):
+        assert all(np.array_equal(a[0], b[0]) and np.array_equal(a[1], b[1]) for a, b in zip(alone, other))

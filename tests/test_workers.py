@@ -83,3 +83,24 @@ def test_bad_protocol_under_mpi_is_one_line_and_no_rank_hangs(tmp_path):
     result = subprocess.run(command, cwd=tmp_path, capture_output=True, text=True, timeout=120)
     assert result.returncode != 0
     assert "seed must be a whole number of at least 0" in result.stderr and "Traceback" not in result.stderr
+
+
+CORES_OF_RANK = """\
+import os
+from mpi4py import MPI
+from boost.workers import cores_of_rank
+print(MPI.COMM_WORLD.rank, len(os.sched_getaffinity(0)), cores_of_rank(MPI.COMM_WORLD))
+"""
+
+
+@pytest.mark.skipif(_mpiexec() is None, reason="needs the mpi extra: pip install -e '.[mpi]'")
+def test_unbound_ranks_on_one_machine_share_its_cores(tmp_path):
+    (tmp_path / "cores.py").write_text(CORES_OF_RANK)
+    command = [_mpiexec(), "-n", "2", sys.executable, "cores.py"]
+    result = subprocess.run(command, cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert result.returncode == 0, result.stderr
+    rows = [tuple(map(int, line.split())) for line in result.stdout.splitlines()]
+    assert sorted(rank for rank, _, _ in rows) == [0, 1]
+    for _, affinity, cores in rows:
+        # both ranks may use every core here (mpiexec binds none by default), so each gets half
+        assert cores == max(1, affinity // 2)

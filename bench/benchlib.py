@@ -193,37 +193,44 @@ def timed_run(protocol_path, folder, *, platform=None, workers=None, comm=None, 
             "n_walkers": plan.n_walkers, "platform": plan.platform, "plan": plan}
 
 
-def bare_loop_seconds(plan, n_cycles, steps_per_cycle):
-    """(wall, CPU) seconds of a plain loop of integrator.step over one context per condition.
+class BareLoop:
+    """One context per condition stepped in turn by plain integrator.step, nothing else.
 
     Same System (umbrella forces included), integrator, platform, temperatures and
-    starting positions as the plan's walkers; nothing else happens between steps.
+    starting positions as the plan's walkers.
     """
-    import openmm
-    from openmm import unit
 
-    protocol = plan.protocol
-    platform = openmm.Platform.getPlatformByName(plan.platform.name)
-    contexts = []
-    for condition in plan.conditions:
-        integrator = openmm.LangevinMiddleIntegrator(
-            condition.temperature * unit.kelvin, protocol.friction / unit.picosecond,
-            protocol.timestep * unit.picosecond)
-        integrator.setRandomNumberSeed(condition.index + 1)
-        context = openmm.Context(plan.system, integrator, platform, plan.platform.properties)
-        context.setPositions(plan.built.positions)
-        context.setVelocitiesToTemperature(condition.temperature * unit.kelvin, condition.index + 1)
-        contexts.append((context, integrator))
-    integrators = [i for _, i in contexts]
-    for integrator in integrators:      # warm-up, as the walkers' minimisation is setup too
-        integrator.step(steps_per_cycle)
+    def __init__(self, plan):
+        import openmm
+        from openmm import unit
+
+        protocol = plan.protocol
+        platform = openmm.Platform.getPlatformByName(plan.platform.name)
+        self.steps = protocol.run.steps_per_cycle
+        self.contexts = []
+        for condition in plan.conditions:
+            integrator = openmm.LangevinMiddleIntegrator(
+                condition.temperature * unit.kelvin, protocol.friction / unit.picosecond,
+                protocol.timestep * unit.picosecond)
+            integrator.setRandomNumberSeed(condition.index + 1)
+            context = openmm.Context(plan.system, integrator, platform, plan.platform.properties)
+            context.setPositions(plan.built.positions)
+            context.setVelocitiesToTemperature(condition.temperature * unit.kelvin, condition.index + 1)
+            self.contexts.append((context, integrator))
+        self.cycle()      # warm-up, as the walkers' minimisation is setup too
+
+    def cycle(self):
+        for _, integrator in self.contexts:
+            integrator.step(self.steps)
+
+
+def bare_loop_seconds(plan, n_cycles):
+    """(wall, CPU) seconds of ``n_cycles`` cycles of a :class:`BareLoop`."""
+    loop = BareLoop(plan)
     cpu, start = time.process_time(), time.perf_counter()
     for _ in range(n_cycles):
-        for integrator in integrators:
-            integrator.step(steps_per_cycle)
-    seconds, cpu = time.perf_counter() - start, time.process_time() - cpu
-    del contexts, integrators
-    return seconds, cpu
+        loop.cycle()
+    return time.perf_counter() - start, time.process_time() - cpu
 
 
 def temporary_folder(prefix):

@@ -14,6 +14,7 @@ import openmm
 from openmm import unit
 
 from .bias import build_umbrella_force, build_wall_force, centre_parameter, spring_parameter
+from .cores import pinned, usable_cores
 from .exceptions import ProtocolError, SimulationError
 
 BIAS_GROUP = 31
@@ -27,7 +28,7 @@ class PlatformChoice:
 
     name: str
     properties: dict
-    probe: tuple = ()      # ((setting, steps per second), ...) when chosen by measuring
+    probe: tuple = ()      # ((setting, steps/s of one context, contexts at once), ...) when measured
 
 
 def derive_seeds(seed, n_walkers):
@@ -66,26 +67,51 @@ def prepare_system(built, protocol, coordinates):
     return system, tuple(axis.coordinate for axis in protocol.umbrella)
 
 
-def platform_properties(name, settings):
+def platform_properties(name, settings, threads=None):
     properties = {}
     if name == "CPU":
-        if settings.threads:
-            properties["Threads"] = str(settings.threads)
+        threads = settings.threads or threads
+        if threads:
+            properties["Threads"] = str(threads)
         if settings.deterministic:
             properties["DeterministicForces"] = "true"
     return properties
 
 
-def choose_platform(settings, system, positions, *, timestep, seconds=0.3):
-    """Pick the platform: as the protocol says, or (``auto``) the fastest in a short probe."""
+def probe_thread_counts(n_cores):
+    """CPU thread counts worth trying on ``n_cores`` cores: 1, 2, 4, ... and n_cores."""
+    counts, t = [], 1
+    while t < n_cores:
+        counts.append(t)
+        t *= 2
+    return counts + [n_cores]
+
+
+def choose_platform(settings, system, positions, *, timestep, n_walkers=1, cores=None, seconds=0.3):
+    """Pick the platform: as the protocol says, or (``auto``) the fastest in a short probe.
+
+    Each setting runs one context pinned to as many cores as it has threads (as the
+    walkers will run); what counts is the machine's throughput, the speed of one context
+    times the walkers that can run at once (``n_walkers``, at most cores / threads).
+    A CPU platform named without threads gets the cores shared out among the walkers.
+    """
+    cores = usable_cores() if cores is None else list(cores)
     if settings.name != "auto":
-        return PlatformChoice(settings.name, platform_properties(settings.name, settings))
-    probe = []
-    for name in ("Reference", "CPU"):
-        properties = platform_properties(name, settings)
-        probe.append((name, _measure_speed(system, positions, name, properties, timestep, seconds)))
-    best = max(probe, key=lambda item: item[1])[0]
-    return PlatformChoice(best, platform_properties(best, settings), tuple(probe))
+        shared_out = max(1, len(cores) // max(1, min(n_walkers, len(cores))))
+        return PlatformChoice(settings.name, platform_properties(settings.name, settings, shared_out))
+    candidates = [("Reference", 1)] + [("CPU", t) for t in
+                                       ([settings.threads] if settings.threads else probe_thread_counts(len(cores)))]
+    probe, best = [], None
+    for name, threads in candidates:
+        properties = platform_properties(name, settings, threads)
+        with pinned(cores[:threads]):
+            rate = _measure_speed(system, positions, name, properties, timestep, seconds)
+        at_once = max(1, min(n_walkers, len(cores) // threads))
+        label = name if name == "Reference" else f"CPU {threads} thread{'s' if threads > 1 else ''}"
+        probe.append((label, rate, at_once))
+        if best is None or rate * at_once > best[0]:
+            best = (rate * at_once, name, properties)
+    return PlatformChoice(best[1], best[2], tuple(probe))
 
 
 def _measure_speed(system, positions, name, properties, timestep, seconds):

@@ -61,7 +61,8 @@ def make_plan(protocol, *, platform=None, probe=True):
     if settings.name == "auto" and not probe:
         choice = PlatformChoice("auto", {})
     else:
-        choice = choose_platform(settings, system, built.positions, timestep=protocol.timestep)
+        choice = choose_platform(settings, system, built.positions, timestep=protocol.timestep,
+                                 n_walkers=len(conditions))
     return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice)
 
 

@@ -29,6 +29,7 @@ def describe_plan(plan):
     lines.append(f"cycles    {run.equilibration_cycles} equilibration + {run.production_cycles} production, "
                  f"{run.steps_per_cycle} steps ({cycle_ps:g} ps) each; "
                  f"{run.n_cycles * run.steps_per_cycle * plan.n_walkers} steps in all")
-    probe = ", ".join(f"{name} {rate:.0f} steps/s" for name, rate in plan.platform.probe)
+    probe = ", ".join(f"{name} {rate:.0f} steps/s" + (f" x {at_once[0]}" if at_once and at_once[0] > 1 else "")
+                      for name, rate, *at_once in plan.platform.probe)
     lines.append(f"platform  {plan.platform.name}" + (f" (measured: {probe})" if probe else ""))
     return "\n".join(lines)

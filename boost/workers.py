@@ -14,6 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .coordinates import compute_coordinate_values_many
+from .cores import core_sets, pin, unpin, usable_cores
 from .engine import Walker
 from .exceptions import SimulationError
 
@@ -161,12 +162,21 @@ class _Workers:
 class SerialWorkers(_Workers):
     """Walkers in this process, propagated one after another."""
 
-    def __init__(self, setup, indices=None):
+    def __init__(self, setup, indices=None, cores=None):
         self.indices = list(range(len(setup.seeds)) if indices is None else indices)
-        self.host = WalkerHost(setup, self.indices)
+        self._unpinned = pin(cores)       # this thread, for as long as it hosts the walkers
+        try:
+            self.host = WalkerHost(setup, self.indices)
+        except BaseException:
+            self.close()
+            raise
 
     def call(self, command, *args):
         return getattr(self.host, command)(*args)
+
+    def close(self):
+        unpin(self._unpinned)
+        self._unpinned = None
 
 
 def merge_replies(replies):
@@ -201,9 +211,10 @@ def _receive(connection):
         return "error", SimulationError("a worker process died unexpectedly")
 
 
-def _serve_pipe(connection, setup, indices):
+def _serve_pipe(connection, setup, indices, cores):
     """Child process: build the walkers, then answer commands until told to stop."""
     try:
+        pin(cores)
         host = WalkerHost(setup, indices)
         connection.send(("ok", {}))
     except Exception as err:  # report any failure to build to the parent
@@ -219,15 +230,17 @@ class ProcessWorkers(_Workers):
     is ever forked) with boost's worker module preloaded, so they start quickly.
     """
 
-    def __init__(self, setup, layout):
+    def __init__(self, setup, layout, cores=None):
+        """cores: a core list per child (see boost.cores), or None to let the system place them."""
         self.indices = sorted(r for group in layout for r in group)
         context = multiprocessing.get_context("forkserver")
         context.set_forkserver_preload(["boost.workers"])
         self.connections, self.processes = [], []
         try:
-            for indices in layout:
+            for indices, child_cores in zip(layout, cores or [None] * len(layout)):
                 parent, child = context.Pipe()
-                process = context.Process(target=_serve_pipe, args=(child, setup, indices), daemon=True)
+                process = context.Process(target=_serve_pipe, args=(child, setup, indices, child_cores),
+                                          daemon=True)
                 process.start()
                 child.close()
                 self.connections.append(parent)
@@ -322,20 +335,23 @@ def serve_mpi_rank(comm):
 
 
 def cores_of_rank(comm):
-    """Cores for this rank's workers: its own, shared with the ranks of its machine that have the same.
+    """The cores for this rank's workers: its own share of those it may use.
 
     Collective over ``comm``. Ranks bound to cores of their own keep them; ranks that were
-    not bound (all may use every core) split the machine's cores between them.
+    not bound (all may use the same cores) split those cores between them in rank order.
     """
     from mpi4py import MPI
 
-    mine = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else list(range(os.cpu_count() or 1))
+    mine = usable_cores()
     machine = comm.Split_type(MPI.COMM_TYPE_SHARED)
     try:
-        sharing = sum(1 for other in machine.allgather(mine) if other == mine)
+        alike = [rank for rank, other in enumerate(machine.allgather(mine)) if other == mine]
+        position = alike.index(machine.rank)
     finally:
         machine.Free()
-    return max(1, len(mine) // sharing)
+    share = max(1, len(mine) // len(alike))
+    start = position * share % len(mine)
+    return mine[start:start + share]
 
 
 class _HostCalls:
@@ -348,22 +364,22 @@ class _HostCalls:
         return lambda *args: self.workers.call(command, *args)
 
 
-def available_cores():
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
-
-
 def local_workers(setup, indices, count, cores=None):
     """Workers for walkers ``indices`` on this machine.
 
     count : int or 'auto' -- processes to spread the walkers over ('auto': as many as
-    ``cores`` (default: all this process may use) allow at the platform's thread count).
+    ``cores`` (default: those this process may use) allow at the platform's thread count).
+    Each process is pinned to cores of its own when they fit (boost.cores).
     """
     indices = list(indices)
+    cores = usable_cores() if cores is None else list(cores)
     threads = int(setup.platform.properties.get("Threads", 1))
-    cores = available_cores() if cores is None else cores
-    n = max(1, cores // threads) if count == "auto" else int(count)
+    n = max(1, len(cores) // threads) if count == "auto" else int(count)
     n = min(n, len(indices))
-    return SerialWorkers(setup, indices) if n <= 1 else ProcessWorkers(setup, spread(indices, n))
+    sets = core_sets(cores, n, threads)
+    if n <= 1:
+        return SerialWorkers(setup, indices, sets[0] if sets else None)
+    return ProcessWorkers(setup, spread(indices, n), sets)
 
 
 def open_workers(setup, count, comm=None):

@@ -8,6 +8,7 @@ import sys
 import numpy as np
 import pytest
 
+from boost.cores import core_sets
 from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
 from boost.store import read_ledger
@@ -89,7 +90,7 @@ CORES_OF_RANK = """\
 import os
 from mpi4py import MPI
 from boost.workers import cores_of_rank
-print(MPI.COMM_WORLD.rank, len(os.sched_getaffinity(0)), cores_of_rank(MPI.COMM_WORLD))
+print(MPI.COMM_WORLD.rank, len(os.sched_getaffinity(0)), ",".join(map(str, cores_of_rank(MPI.COMM_WORLD))))
 """
 
 
@@ -99,8 +100,19 @@ def test_unbound_ranks_on_one_machine_share_its_cores(tmp_path):
     command = [_mpiexec(), "-n", "2", sys.executable, "cores.py"]
     result = subprocess.run(command, cwd=tmp_path, capture_output=True, text=True, timeout=120)
     assert result.returncode == 0, result.stderr
-    rows = [tuple(map(int, line.split())) for line in result.stdout.splitlines()]
-    assert sorted(rank for rank, _, _ in rows) == [0, 1]
-    for _, affinity, cores in rows:
-        # both ranks may use every core here (mpiexec binds none by default), so each gets half
-        assert cores == max(1, affinity // 2)
+    rows = [line.split() for line in result.stdout.splitlines()]
+    assert sorted(int(rank) for rank, _, _ in rows) == [0, 1]
+    affinities = {int(affinity) for _, affinity, _ in rows}
+    shares = [set(map(int, cores.split(","))) for _, _, cores in rows]
+    if affinities == {os.cpu_count()} and os.cpu_count() >= 2:
+        # both ranks may use every core (mpiexec binds none by default): each gets its own half
+        assert not shares[0] & shares[1]
+        assert [len(share) for share in shares] == [os.cpu_count() // 2] * 2
+    else:  # a launcher that binds ranks: each keeps what it was given
+        assert all(len(share) >= 1 for share in shares)
+
+
+def test_hosts_get_disjoint_cores_when_they_fit():
+    assert core_sets([0, 1, 2, 3], 2, 2) == [[0, 1], [2, 3]]
+    assert core_sets([4, 5], 2, 1) == [[4], [5]]
+    assert core_sets([0, 1], 2, 2) is None       # oversubscribed: let the system place them

@@ -2,7 +2,8 @@
 
 For two systems, capped alanine in vacuum and in OBC2 implicit solvent, the same
 4-window umbrella protocol runs with the default platform (``auto``: boost probes
-Reference and CPU and takes the faster) and with each setting a user could force:
+Reference and CPU at 1 and 2 threads and takes the fastest for the machine) and with each
+setting a user could force:
 Reference; CPU with 1 thread; CPU with 2 threads. Everything else is the default too
 (``workers: auto``, one worker process per core). Only the cycle loop is timed; the
 auto probe's own cost is printed separately (it runs once per run, before the loop).
@@ -49,9 +50,9 @@ SETTINGS = (("default (auto)", None, None), ("Reference", "Reference", None),
             ("CPU, 1 thread", "CPU", 1), ("CPU, 2 threads", "CPU", 2))
 
 
-def production_ps(steps_per_second, seconds, cores):
+def production_ps(steps_per_second, seconds, cores, threads):
     """Production (ps, whole cycles) that takes about ``seconds`` at this speed per context."""
-    parallel = min(cores, WINDOWS)
+    parallel = max(1, min(cores // threads, WINDOWS))
     steps = steps_per_second * seconds * parallel / WINDOWS
     cycles = max(4, math.ceil(steps / (CYCLE_PS / 0.002)))
     return cycles * CYCLE_PS
@@ -70,14 +71,18 @@ def measure_system(system, tmp, args):
     probe_path = benchlib.write_protocol(tmp, f"{system}-probe", PROTOCOL.format(
         system=system, cycle=CYCLE_PS, production=CYCLE_PS))
     auto = make_plan(load_protocol(probe_path))
-    speeds = dict(auto.platform.probe)
+    speeds = {label: rate for label, rate, _ in auto.platform.probe}
+    chosen_threads = int(auto.platform.properties.get("Threads", 1))
     print(f"{system}: auto probe measured {', '.join(f'{k} {v:.0f} steps/s' for k, v in speeds.items())}; "
-          f"chose {auto.platform.name}", flush=True)
+          f"chose {auto.platform.name} {auto.platform.properties or ''}", flush=True)
     paths = {}
     for label, name, threads in SETTINGS:
-        speed = speeds["CPU"] if name == "CPU" else speeds[name or auto.platform.name]
+        threads = threads or (chosen_threads if name is None else 1)
+        key = "Reference" if (name or auto.platform.name) == "Reference" else \
+            f"CPU {threads} thread{'s' if threads > 1 else ''}"
         paths[label] = benchlib.write_protocol(tmp, f"{system}-{len(paths)}", PROTOCOL.format(
-            system=system, cycle=CYCLE_PS, production=production_ps(speed, args.seconds, benchlib.usable_cores())))
+            system=system, cycle=CYCLE_PS,
+            production=production_ps(speeds[key], args.seconds, benchlib.usable_cores(), threads)))
     rates = {label: [] for label, _, _ in SETTINGS}
     detail = {}
     for trial in range(args.trials):
@@ -113,7 +118,7 @@ def main():
                 rows.append((label, layout, " / ".join(f"{v:.0f}" for v in rates[label]), f"{medians[label]:.0f}",
                              f"{medians[label] / medians[best_label]:.3f}", f"{first['plan_s']:.1f}",
                              f"{first['setup_s']:.1f}"))
-            probes = [" / ".join(f"{k} {v:.0f}" for k, v in detail[SETTINGS[0][0], t]["platform"].probe)
+            probes = [" / ".join(f"{k} {v:.0f}" for k, v, _ in detail[SETTINGS[0][0], t]["platform"].probe)
                       for t in range(args.trials)]
             print(f"{system}: the default run's own probes (steps/s): " + "; ".join(probes))
             print()

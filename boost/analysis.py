@@ -15,7 +15,7 @@ import numpy as np
 
 from .conditions import compute_reduced_potentials, compute_unbiased_reduced_potential
 from .diagnostics import summarise_swaps, warn_poor_overlap
-from .exceptions import AnalysisError, ConvergenceWarning
+from .exceptions import AnalysisError, BoostWarning, ConvergenceWarning
 from .protocol import parse_protocol
 from .spec import read_text
 from .reweight import Reweighting, decorrelate
@@ -176,6 +176,20 @@ def compute_sample_reduced_potentials(data, protocol, conditions, walkers, cycle
                                       volume_r=data.volume_rt[walkers, cycles], pressure=protocol.pressure)
 
 
+#: pymbar 4.0.3 holds about this many arrays of conditions x samples float64 at its peak
+#: (solve, uncertainties, overlap), measured with bench/mem_analysis.py.
+MBAR_COPIES = 12
+#: Share of analysis.memory given to those arrays; the rest is Python, the ledger's
+#: columns and the tables (about 250 MiB measured for 24 conditions x 10^5 cycles).
+MBAR_SHARE = 0.6
+
+
+def thinning_stride(n_samples, n_conditions, memory):
+    """Take every stride-th sample of each condition so MBAR fits in ``memory`` bytes."""
+    fits = int(memory * MBAR_SHARE / (MBAR_COPIES * 8 * n_conditions))
+    return max(1, math.ceil(n_samples / max(fits, 1)))
+
+
 def select_samples(data, protocol, folder):
     """Production samples per condition, equilibration removed, subsampled; u_kn and N_k."""
     production = np.flatnonzero(data.production_t)
@@ -197,6 +211,14 @@ def select_samples(data, protocol, folder):
         picks.append((walker_t[keep], production[keep]))
         t0_k.append(t0)
         g_k.append(g)
+    stride = thinning_stride(sum(len(w) for w, _ in picks), len(data.conditions), protocol.analysis.memory)
+    if stride > 1:
+        total = sum(len(w) for w, _ in picks)
+        strides = [max(1, min(stride, len(w) // MIN_SAMPLES)) for w, _ in picks]
+        picks = [(w[::k], c[::k]) for (w, c), k in zip(picks, strides)]
+        warnings.warn(f"MBAR uses every {stride}th of the {total} uncorrelated samples "
+                      f"({sum(len(w) for w, _ in picks)}) to stay within analysis.memory "
+                      f"({protocol.analysis.memory / 2**30:.3g} GiB); raise it to use them all.", BoostWarning)
     walkers_n = np.concatenate([w for w, _ in picks])
     cycles_n = np.concatenate([c for _, c in picks])
     u_kn = compute_sample_reduced_potentials(data, protocol, data.conditions, walkers_n, cycles_n)

@@ -120,10 +120,14 @@ class Bins:
     edges: tuple           # bin edges in nm or rad
 
 
+MIN_ANALYSIS_MEMORY = 512 * 2**20
+
+
 @dataclass(frozen=True)
 class AnalysisSettings:
     bins: tuple            # tuple[Bins, ...]; empty: chosen from the data
     energy_unit: str       # 'kJ/mol', 'kcal/mol' or 'kT'
+    memory: float = 2**30  # bytes the analysis may use (MBAR's samples are thinned to fit)
 
 
 @dataclass(frozen=True)
@@ -477,7 +481,7 @@ def _boxes_overlap(a, b, coordinates):
 
 
 def _read_analysis(node, coordinates):
-    node.mapping(allowed=("bins", "energy_unit"))
+    node.mapping(allowed=("bins", "energy_unit", "memory"))
     bins = []
     for name, entry in node.get("bins", {}).items():
         coordinate = _coordinate(Node(name, node.file, entry.path), coordinates)
@@ -491,7 +495,11 @@ def _read_analysis(node, coordinates):
         count = entry.get("count").integer(minimum=1, maximum=_MAX_COUNT)
         bins.append(Bins(coordinate.name, tuple(np.linspace(start, stop, count + 1).tolist())))
     unit = node.get("energy_unit", "kJ/mol").text(choices=("kJ/mol", "kcal/mol", "kT"))
-    return AnalysisSettings(bins=tuple(bins), energy_unit=unit)
+    memory = node.get("memory", "1 GiB").quantity("memory", positive=True)
+    if memory < MIN_ANALYSIS_MEMORY:
+        node.get("memory").fail(f"at least {MIN_ANALYSIS_MEMORY // 2**20} MiB (the analysis needs that much "
+                                "before any sample)")
+    return AnalysisSettings(bins=tuple(bins), energy_unit=unit, memory=memory)
 
 
 # -- atoms (needs the built topology) ---------------------------------------------------

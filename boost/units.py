@@ -40,6 +40,7 @@ DIMENSIONS = {
     "concentration": ("mol/L", 0, "a concentration", "0.15 molar"),
     "spring_length": ("kJ/mol/nm**2", 0, "an energy per length squared", "1000 kJ/mol/nm**2"),
     "spring_angle": ("kJ/mol/rad**2", -2, "an energy per angle squared", "200 kJ/mol/rad**2"),
+    "memory": ("byte", 0, "an amount of memory", "2 GiB"),
 }
 
 _NUMBER = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(.*?)\s*$")

@@ -113,6 +113,8 @@ BAD_EXTRA = [
     ("walls:\n  - {coordinate: x, spring: 1 kJ/mol/nm**2}\n", r"walls\[0\] must be a wall with a 'lower' or an 'upper'"),
     ("walls:\n  - {coordinate: x, lower: 1 nm, upper: 0 nm, spring: 1 kJ/mol/nm**2}\n", r"walls\[0\]\.upper must be above 'lower'"),
     ("analysis: {energy_unit: eV}\n", r"analysis\.energy_unit must be one of"),
+    ("analysis: {memory: 100 MiB}\n", r"analysis\.memory must be at least 512 MiB"),
+    ("analysis: {memory: 2 nm}\n", r"analysis\.memory must be an amount of memory"),
     ("umbrella:\n  d: {centres: [-0.1 nm, 0.2 nm], spring: 1 kJ/mol/nm**2}\ncoordinates:\n  x: {position: 0, axis: x}\n",
      r"duplicate key"),
 ]

@@ -99,7 +99,7 @@ KNOWN_KEYS = ["protocol", "title", "system", "seed", "temperature", "timestep", 
               "centres", "spring", "from", "to", "count", "lower", "upper", "coordinate", "lowest",
               "highest", "scheme", "attempts", "name", "threads", "deterministic", "cycle",
               "equilibration", "production", "frame_interval", "checkpoint_interval", "minimise",
-              "retries", "workers", "bins", "energy_unit", "x", "phi", "psi", "left", "right", "model"]
+              "retries", "workers", "bins", "energy_unit", "memory", "x", "phi", "psi", "left", "right", "model"]
 UNITS = ["K", "fs", "ps", "ns", "nm", "Å", "angstrom", "deg", "rad", "kJ/mol", "kcal/mol", "kT",
          "kJ/mol/nm**2", "kJ/mol/rad**2", "kJ/mol/deg**2", "kcal/mol/Å**2", "1/ps", "/ps", "ps**-1",
          "bar", "atm", "molar", "amu", "degC", "degF", "delta_degC", "m/s", "furlong", "dimensionless",

@@ -20,7 +20,8 @@ import pytest
 from scipy.integrate import IntegrationWarning
 
 from boost.analysis import analyse_run
-from boost.exceptions import AnalysisError, ConvergenceWarning, InputError, ProtocolError, RunFolderError
+from boost.exceptions import (AnalysisError, BoostWarning, ConvergenceWarning, InputError, ProtocolError,
+                              RunFolderError)
 from boost.models import read_model
 from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
@@ -459,3 +460,20 @@ def test_target_temperature_outside_the_ladder(small_ladder):
         with pytest.raises(AnalysisError, match=r"target temperature \d+ K is outside the ladder "
                                                 r"\(300 K to 330 K\)"):
             analyse_run(folder, temperature=temperature)
+
+
+def test_samples_beyond_analysis_memory_are_thinned_evenly_and_stay_right(one_window, monkeypatch):
+    # Pretend MBAR needs far more memory per sample, so a quarter of the samples fit.
+    import boost.analysis
+    protocol, folder, full = one_window
+    n_full = int(full.samples_k.sum())
+    monkeypatch.setattr(boost.analysis, "MBAR_COPIES", int(0.6 * 2**30 / (8 * n_full / 4)))
+    with pytest.warns(BoostWarning, match=r"MBAR uses every [45]th of the \d+ uncorrelated samples"):
+        thinned = analyse_run(folder, energy_unit="kT")
+    assert n_full / 5 <= thinned.samples_k.sum() <= n_full / 3.9
+    # source: exact, quadrature with scipy via boost.models; fewer samples, wider error bars
+    exact = _model(protocol).compute_exact_populations(TEMPERATURE, HALF_LINES)
+    basins = thinned.basins
+    for i, name in enumerate(basins.names):
+        assert abs(basins.populations[i] - exact[name]) < 3 * basins.d_populations[i], name
+    assert np.all(basins.d_populations > 1.4 * full.basins.d_populations)

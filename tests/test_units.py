@@ -22,6 +22,8 @@ PLACE = "p.yaml: key"
     ("1 kJ/mol/deg**2", "spring_angle", (180 / math.pi) ** 2),
     ("0.15 molar", "concentration", 0.15),
     ("1 atm", "pressure", 1.01325),              # source: standard atmosphere = 101325 Pa (SI definition)
+    ("2 GiB", "memory", 2 * 2**30),              # source: IEC binary prefixes, 1 GiB = 2**30 bytes
+    ("1.5 GB", "memory", 1.5e9),                 # source: SI prefixes, 1 GB = 10**9 bytes
 ])
 def test_parse_quantity_converts_to_md_units(text, dimension, expected):
     assert parse_quantity(text, dimension, place=PLACE) == pytest.approx(expected)

@@ -57,6 +57,7 @@ class Analysis:
     energy_unit: str
     n_cycles: int
     samples_k: np.ndarray     # uncorrelated samples used per condition
+    thinning_k: np.ndarray    # of those, every how many MBAR used (1: all; see analysis.memory)
     t0_k: np.ndarray          # equilibration discarded per condition (production cycles)
     g_k: np.ndarray           # statistical inefficiency per condition (cycles)
     f_k: np.ndarray           # condition free energies relative to condition 0, in kT
@@ -84,8 +85,9 @@ def load_run(folder):
     return protocol, data
 
 
-def analyse_run(folder, *, temperature=None, energy_unit=None):
-    """Analyse a run folder; see :class:`Analysis`. ``temperature`` in K."""
+def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None):
+    """Analyse a run folder; see :class:`Analysis`. ``temperature`` in K; ``memory`` in
+    bytes overrides the protocol's analysis.memory."""
     protocol, data = load_run(folder)
     temperature = protocol.temperature if temperature is None else temperature
     ladder = protocol.temperatures
@@ -93,7 +95,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None):
         raise AnalysisError(f"{folder}: target temperature {temperature:g} K is outside the ladder "
                             f"({min(ladder):g} K to {max(ladder):g} K); MBAR cannot extrapolate.")
     unit = energy_unit or protocol.analysis.energy_unit
-    samples = select_samples(data, protocol, folder)
+    samples = select_samples(data, protocol, folder, protocol.analysis.memory if memory is None else memory)
     u_kn, N_k, picks = samples["u_kn"], samples["N_k"], samples["picks"]
     mbar = Reweighting(u_kn, N_k)
     u_n = compute_unbiased_reduced_potential(
@@ -108,7 +110,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None):
     production = set(data.cycle_t[data.production_t].tolist())
     return Analysis(
         folder=str(folder), temperature=temperature, energy_unit=unit, n_cycles=len(data.cycle_t),
-        samples_k=N_k, t0_k=samples["t0_k"], g_k=samples["g_k"],
+        samples_k=N_k, thinning_k=samples["thinning_k"], t0_k=samples["t0_k"], g_k=samples["g_k"],
         f_k=mbar.f_k, df_k=mbar.df_k, overlap=mbar.overlap,
         poor_pairs=tuple(poor),
         profiles=tuple(_profiles(mbar, u_n, values_nc, data, protocol, scale)),
@@ -190,7 +192,7 @@ def thinning_stride(n_samples, n_conditions, memory):
     return max(1, math.ceil(n_samples / max(fits, 1)))
 
 
-def select_samples(data, protocol, folder):
+def select_samples(data, protocol, folder, memory):
     """Production samples per condition, equilibration removed, subsampled; u_kn and N_k."""
     production = np.flatnonzero(data.production_t)
     if production.size == 0:
@@ -211,19 +213,20 @@ def select_samples(data, protocol, folder):
         picks.append((walker_t[keep], production[keep]))
         t0_k.append(t0)
         g_k.append(g)
-    stride = thinning_stride(sum(len(w) for w, _ in picks), len(data.conditions), protocol.analysis.memory)
+    total = sum(len(w) for w, _ in picks)
+    stride = thinning_stride(total, len(data.conditions), memory)
+    strides = [max(1, min(stride, len(w) // MIN_SAMPLES)) for w, _ in picks]
     if stride > 1:
-        total = sum(len(w) for w, _ in picks)
-        strides = [max(1, min(stride, len(w) // MIN_SAMPLES)) for w, _ in picks]
         picks = [(w[::k], c[::k]) for (w, c), k in zip(picks, strides)]
-        warnings.warn(f"MBAR uses every {stride}th of the {total} uncorrelated samples "
-                      f"({sum(len(w) for w, _ in picks)}) to stay within analysis.memory "
-                      f"({protocol.analysis.memory / 2**30:.3g} GiB); raise it to use them all.", BoostWarning)
+        warnings.warn(f"MBAR uses {sum(len(w) for w, _ in picks)} of the {total} uncorrelated samples "
+                      f"(1 in {stride}, evenly spaced) to stay within analysis.memory ({memory / 2**30:.3g} GiB); "
+                      "boost analyze --memory raises it.", BoostWarning)
     walkers_n = np.concatenate([w for w, _ in picks])
     cycles_n = np.concatenate([c for _, c in picks])
     u_kn = compute_sample_reduced_potentials(data, protocol, data.conditions, walkers_n, cycles_n)
     N_k = np.array([len(w) for w, _ in picks])
-    return {"u_kn": u_kn, "N_k": N_k, "picks": picks, "t0_k": np.array(t0_k), "g_k": np.array(g_k)}
+    return {"u_kn": u_kn, "N_k": N_k, "picks": picks, "t0_k": np.array(t0_k), "g_k": np.array(g_k),
+            "thinning_k": np.array(strides)}
 
 
 def _edges(protocol, data, name, values):

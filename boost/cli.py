@@ -91,18 +91,20 @@ def run(protocol_file, folder, platform_name, threads, workers, quiet):
     from .protocol import load_protocol
     from .scheduler import make_plan, Scheduler
     from .summary import describe_plan
-    from .workers import mpi_world, release_waiting_ranks, serve_mpi_rank
+    from .workers import cores_of_rank, mpi_world, release_waiting_ranks, serve_mpi_rank
 
     comm = mpi_world()
     if comm is not None and comm.rank > 0:
         serve_mpi_rank(comm)
         return
+    cores = None if comm is None else cores_of_rank(comm)
     try:
         protocol = load_protocol(protocol_file)
         folder = folder or Path("runs") / protocol_file.stem
-        plan = make_plan(protocol, platform=_platform_override(protocol, platform_name, threads))
+        plan = make_plan(protocol, platform=_platform_override(protocol, platform_name, threads),
+                         workers=workers, comm=comm, cores=cores)
         click.echo(describe_plan(plan))
-        Scheduler(plan, folder, progress=not quiet, workers=workers, comm=comm).run()
+        Scheduler(plan, folder, progress=not quiet, workers=workers, comm=comm, cores=cores).run()
     finally:
         release_waiting_ranks(comm)
     click.echo(f"run complete: {folder}")
@@ -124,12 +126,14 @@ def systems():
               help="Energy unit of the tables (default: the protocol's analysis.energy_unit).")
 @click.option("--output", type=click.Path(file_okay=False, path_type=Path),
               help="Folder for tables and plots (default: RUN_FOLDER/analysis).")
-def analyze(run_folder, temperature, energy_unit, output):
+@click.option("--memory", help="Memory the analysis may use, e.g. '4 GiB' (default: the protocol's analysis.memory).")
+def analyze(run_folder, temperature, energy_unit, output, memory):
     """Reweight RUN_FOLDER with MBAR: basin populations, ΔG, PMFs, diagnostics."""
     import warnings
 
     from .analysis import analyse_run
-    from .exceptions import BoostWarning, RunFolderError
+    from .exceptions import BoostWarning, ProtocolError, RunFolderError
+    from .protocol import MIN_ANALYSIS_MEMORY
     from .report import format_summary, write_report
     from .units import parse_quantity
 
@@ -138,9 +142,14 @@ def analyze(run_folder, temperature, energy_unit, output):
     target = None
     if temperature is not None:
         target = parse_quantity(temperature, "temperature", place="--temperature")
+    memory_bytes = None
+    if memory is not None:
+        memory_bytes = parse_quantity(memory, "memory", place="--memory")
+        if memory_bytes < MIN_ANALYSIS_MEMORY:
+            raise ProtocolError(f"--memory must be at least {MIN_ANALYSIS_MEMORY // 2**20} MiB. Got {memory!r} instead.")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", BoostWarning)
-        analysis = analyse_run(run_folder, temperature=target, energy_unit=energy_unit)
+        analysis = analyse_run(run_folder, temperature=target, energy_unit=energy_unit, memory=memory_bytes)
     for warning in caught:
         if issubclass(warning.category, BoostWarning):
             logging.getLogger("boost").warning("warning: %s", warning.message)

@@ -87,17 +87,24 @@ def probe_thread_counts(n_cores):
     return counts + [n_cores]
 
 
-def choose_platform(settings, system, positions, *, timestep, n_walkers=1, cores=None, seconds=0.3):
+def choose_platform(settings, system, positions, *, timestep, n_walkers=1, cores=None, workers="auto",
+                    seconds=0.3):
     """Pick the platform: as the protocol says, or (``auto``) the fastest in a short probe.
 
     Each setting runs one context pinned to as many cores as it has threads (as the
-    walkers will run); what counts is the machine's throughput, the speed of one context
-    times the walkers that can run at once (``n_walkers``, at most cores / threads).
-    A CPU platform named without threads gets the cores shared out among the walkers.
+    walkers will run); a setting is ranked by that speed times the contexts that can run
+    at once: ``n_walkers``, at most cores / threads, at most ``workers`` processes. A CPU
+    platform named without threads gets the cores shared out among those contexts.
+    ``cores``: the cores the walkers may use (default: this process's).
     """
     cores = usable_cores() if cores is None else list(cores)
+    limit = n_walkers if workers == "auto" else min(n_walkers, int(workers))
+
+    def at_once(threads):
+        return max(1, min(limit, len(cores) // threads))
+
     if settings.name != "auto":
-        shared_out = max(1, len(cores) // max(1, min(n_walkers, len(cores))))
+        shared_out = max(1, len(cores) // at_once(1))
         return PlatformChoice(settings.name, platform_properties(settings.name, settings, shared_out))
     candidates = [("Reference", 1)] + [("CPU", t) for t in
                                        ([settings.threads] if settings.threads else probe_thread_counts(len(cores)))]
@@ -106,11 +113,10 @@ def choose_platform(settings, system, positions, *, timestep, n_walkers=1, cores
         properties = platform_properties(name, settings, threads)
         with pinned(cores[:threads]):
             rate = _measure_speed(system, positions, name, properties, timestep, seconds)
-        at_once = max(1, min(n_walkers, len(cores) // threads))
         label = name if name == "Reference" else f"CPU {threads} thread{'s' if threads > 1 else ''}"
-        probe.append((label, rate, at_once))
-        if best is None or rate * at_once > best[0]:
-            best = (rate * at_once, name, properties)
+        probe.append((label, rate, at_once(threads)))
+        if best is None or rate * at_once(threads) > best[0]:
+            best = (rate * at_once(threads), name, properties)
     return PlatformChoice(best[1], best[2], tuple(probe))
 
 
@@ -176,10 +182,11 @@ class Walker:
         self.index = index
         self.umbrella_names = umbrella_names
         self.uses_pbc = system.usesPeriodicBoundaryConditions()
-        self.has_barostat = any(isinstance(f, BAROSTATS) for f in system.getForces())
-        for force in system.getForces():
-            if isinstance(force, BAROSTATS):     # read when the context is made; 0 would mean 'random'
-                force.setRandomNumberSeed(seed)
+        barostats = [f for f in system.getForces() if isinstance(f, BAROSTATS)]
+        self.barostat_temperatures = sorted({type(f).Temperature() for f in barostats})   # parameter names
+        for force in barostats:
+            # read when the context is made (0 would mean 'random'); the System is the host's own copy
+            force.setRandomNumberSeed(seed)
         self.integrator = openmm.LangevinMiddleIntegrator(
             condition.temperature * unit.kelvin, friction / unit.picosecond, timestep * unit.picosecond)
         self.integrator.setRandomNumberSeed(seed)
@@ -225,8 +232,8 @@ class Walker:
             scale = np.sqrt(condition.temperature / old.temperature)
             self.context.setVelocities(velocities * scale)
         self.integrator.setTemperature(condition.temperature * unit.kelvin)
-        if self.has_barostat:
-            self.context.setParameter(openmm.MonteCarloBarostat.Temperature(), condition.temperature)
+        for name in self.barostat_temperatures:
+            self.context.setParameter(name, condition.temperature)
         self.condition = condition
 
     def minimise(self, *, tolerance=10.0, max_iterations=2000):

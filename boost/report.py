@@ -73,10 +73,10 @@ def _write_rows(path, header, rows):
 
 
 def _write_conditions(analysis, out):
-    rows = [(k, analysis.condition_labels[k], int(analysis.samples_k[k]), int(analysis.t0_k[k]),
-             _fmt(analysis.g_k[k], 2), _fmt(analysis.f_k[k], 4), _fmt(analysis.df_k[k], 4))
+    rows = [(k, analysis.condition_labels[k], int(analysis.samples_k[k]), int(analysis.thinning_k[k]),
+             int(analysis.t0_k[k]), _fmt(analysis.g_k[k], 2), _fmt(analysis.f_k[k], 4), _fmt(analysis.df_k[k], 4))
             for k in range(len(analysis.samples_k))]
-    _write_rows(out / "conditions.csv", ["condition", "label", "uncorrelated samples",
+    _write_rows(out / "conditions.csv", ["condition", "label", "samples used", "1 in (memory thinning)",
                                          "equilibration discarded (cycles)", "statistical inefficiency (cycles)",
                                          "f (kT)", "f error (kT)"], rows)
     _write_rows(out / "overlap.csv", ["condition"] + [str(k) for k in range(len(analysis.overlap))],
@@ -125,7 +125,8 @@ def _clean(array):
 def _summary(analysis):
     result = {"temperature (K)": analysis.temperature, "energy unit": analysis.energy_unit,
               "cycles in ledger": analysis.n_cycles,
-              "conditions": [{"label": analysis.condition_labels[k], "uncorrelated samples": int(analysis.samples_k[k]),
+              "conditions": [{"label": analysis.condition_labels[k], "samples used": int(analysis.samples_k[k]),
+                              "1 in (memory thinning)": int(analysis.thinning_k[k]),
                               "f (kT)": float(analysis.f_k[k]), "f error (kT)": float(analysis.df_k[k])}
                              for k in range(len(analysis.samples_k))]}
     if analysis.basins is not None:

@@ -25,7 +25,7 @@ from .provenance import describe_environment, describe_git
 from .store import (LEDGER, PROTOCOL, PROVENANCE, FolderLock, FrameWriter, Ledger, check_folder_for,
                     read_checkpoint, recorded_last_cycle, write_atomically, write_checkpoint)
 from .systems import load_system
-from .workers import WalkerSetup, open_workers
+from .workers import WalkerSetup, open_workers, rank_walkers
 
 log = logging.getLogger("boost")
 
@@ -47,11 +47,13 @@ class Plan:
         return len(self.conditions)
 
 
-def make_plan(protocol, *, platform=None, probe=True):
+def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, cores=None):
     """Build the system and check every input; writes nothing.
 
     ``platform``: a PlatformSettings overriding the protocol's. ``probe=False`` leaves an
-    automatic platform choice unmade (name 'auto'), so no MD step runs.
+    automatic platform choice unmade (name 'auto'), so no MD step runs. ``workers``,
+    ``comm`` and ``cores`` (this rank's, see boost.workers.cores_of_rank) tell the
+    platform choice how the walkers will be laid out.
     """
     built = load_system(protocol.system, protocol.base_dir)
     coordinates = resolve_coordinates(protocol, built.topology)
@@ -61,8 +63,10 @@ def make_plan(protocol, *, platform=None, probe=True):
     if settings.name == "auto" and not probe:
         choice = PlatformChoice("auto", {})
     else:
+        n_walkers = len(conditions) if comm is None else len(rank_walkers(len(conditions), comm, 0))
         choice = choose_platform(settings, system, built.positions, timestep=protocol.timestep,
-                                 n_walkers=len(conditions))
+                                 n_walkers=n_walkers, cores=cores,
+                                 workers=settings.workers if workers is None else workers)
     return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice)
 
 
@@ -101,9 +105,10 @@ def _create_folder(folder, plan, seeds, swap_seed):
 class Scheduler:
     """Runs a plan into a run folder: a fresh start, or a resume from its last checkpoint."""
 
-    def __init__(self, plan, folder, *, progress=True, workers=None, comm=None):
+    def __init__(self, plan, folder, *, progress=True, workers=None, comm=None, cores=None):
         self.plan = plan
         self.comm = comm
+        self.cores = cores
         self.worker_count = workers if workers is not None else plan.protocol.platform.workers
         self.folder = Path(folder)
         self.progress = progress
@@ -145,7 +150,7 @@ class Scheduler:
             ledger = Ledger(self.folder / LEDGER, coordinate_names=tuple(plan.coordinates))
         else:
             ledger = _create_folder(self.folder, plan, self.seeds, self.swap_seed)
-        workers = open_workers(self._walker_setup(), self.worker_count, self.comm)
+        workers = open_workers(self._walker_setup(), self.worker_count, self.comm, self.cores)
         frames = None
         try:
             start, assignment, rng = self._restore(workers, ledger, state)

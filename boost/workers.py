@@ -254,8 +254,11 @@ class ProcessWorkers(_Workers):
         return merge_replies(_receive(connection) for connection in self.connections)
 
     def call(self, command, *args):
-        for connection in self.connections:
-            connection.send((command, args))
+        try:
+            for connection in self.connections:
+                connection.send((command, args))
+        except OSError:        # the pipe of a worker that died
+            raise SimulationError("a worker process died unexpectedly") from None
         return self._collect()
 
     def close(self):
@@ -285,16 +288,22 @@ class MPIWorkers(_Workers):
     Each rank keeps its walkers in local workers (processes where the platform needs them).
     """
 
-    def __init__(self, setup, comm, count):
+    def __init__(self, setup, comm, count, cores=None):
+        """cores: rank 0's share (boost.workers.cores_of_rank, which the other ranks have
+        called too before waiting for the setup); computed here when not given."""
         self.comm = comm
         self.indices = list(range(len(setup.seeds)))
+        cores = cores_of_rank(comm) if cores is None else cores
         comm.bcast((setup, count), root=0)
         MPI_SETUP_SENT.add(id(comm))
         self.host = None
-        self._gather(lambda: self._build(setup, count))
+        try:
+            self._gather(lambda: self._build(setup, count, cores))
+        except BaseException:
+            self.close()       # every rank stops, those that built their walkers close them
+            raise
 
-    def _build(self, setup, count):
-        cores = cores_of_rank(self.comm)
+    def _build(self, setup, count, cores):
         self.host = local_workers(setup, rank_walkers(len(self.indices), self.comm, 0), count, cores)
         return {}
 
@@ -317,16 +326,17 @@ class MPIWorkers(_Workers):
 
 def serve_mpi_rank(comm):
     """Ranks above 0: receive the setup, host walkers, answer commands until told to stop."""
+    cores = cores_of_rank(comm)
     message = comm.bcast(None, root=0)
     if message is None:        # rank 0 stopped before the run started (bad input, run complete)
         return
     setup, count = message
     try:
-        cores = cores_of_rank(comm)
         host = local_workers(setup, rank_walkers(len(setup.seeds), comm, comm.rank), count, cores)
         comm.gather(("ok", {}), root=0)
     except Exception as err:
         comm.gather(("error", err), root=0)
+        comm.bcast(None, root=0)     # rank 0's 'stop' after a failed start
         return
     try:
         answer_commands(_HostCalls(host), lambda: comm.bcast(None, root=0), lambda r: comm.gather(r, root=0))
@@ -376,17 +386,17 @@ def local_workers(setup, indices, count, cores=None):
     threads = int(setup.platform.properties.get("Threads", 1))
     n = max(1, len(cores) // threads) if count == "auto" else int(count)
     n = min(n, len(indices))
-    sets = core_sets(cores, n, threads)
+    sets = core_sets(cores, n, threads) or [cores] * n     # oversubscribed: share all of them
     if n <= 1:
-        return SerialWorkers(setup, indices, sets[0] if sets else None)
+        return SerialWorkers(setup, indices, sets[0])
     return ProcessWorkers(setup, spread(indices, n), sets)
 
 
-def open_workers(setup, count, comm=None):
+def open_workers(setup, count, comm=None, cores=None):
     """Workers for a run: spread over MPI ranks when ``comm`` spans several, else local."""
     if comm is not None and comm.size > 1:
-        return MPIWorkers(setup, comm, count)
-    return local_workers(setup, range(len(setup.seeds)), count)
+        return MPIWorkers(setup, comm, count, cores)
+    return local_workers(setup, range(len(setup.seeds)), count, cores)
 
 
 def mpi_world():

@@ -86,6 +86,12 @@ def test_run_then_foreign_protocol_refused_without_damage(write_protocol, tmp_pa
     assert {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()} == before
     analysed = boost("analyze", "out", cwd=tmp_path)
     assert analysed.returncode == 0, analysed.stderr
+    snapshot = {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()}
+    for memory, message in (("10 MiB", r"--memory must be at least 512 MiB"),
+                            ("lots", r"--memory must be an amount of memory")):
+        assert_one_line_error(boost("analyze", "out", "--memory", memory, cwd=tmp_path), message)
+    assert {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()} == snapshot
+    assert boost("analyze", "out", "--memory", "2 GiB", cwd=tmp_path).returncode == 0
 
 
 def test_analyze_rejects_a_folder_that_is_not_a_run(tmp_path):

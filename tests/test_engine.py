@@ -144,7 +144,7 @@ def test_walkers_sharing_a_process_follow_the_trajectory_they_follow_alone(alani
     assert all(np.array_equal(a[0], b[0]) for a, b in zip(alone, shared))
 
 
-def _argon_box():
+def _argon_box(barostat=None):
     """125 Lennard-Jones argon atoms in a 3 nm periodic box with a Monte Carlo barostat.
 
     sigma 0.3405 nm, epsilon 0.996 kJ/mol (argon, value from memory; only a test fluid here).
@@ -159,7 +159,7 @@ def _argon_box():
         system.addParticle(39.948)
         nonbonded.addParticle(0.0, 0.3405, 0.996)
     system.addForce(nonbonded)
-    system.addForce(openmm.MonteCarloBarostat(1.0 * unit.bar, 120 * unit.kelvin, 5))
+    system.addForce(barostat or openmm.MonteCarloBarostat(1.0 * unit.bar, 120 * unit.kelvin, 5))
     return system, grid
 
 
@@ -179,3 +179,21 @@ def test_barostat_runs_repeat_with_the_seed_and_whatever_shares_the_process():
     assert len(set(volumes)) > 1                     # the barostat did move the box
     for other in (again, shared):
         assert all(np.array_equal(a[0], b[0]) and np.array_equal(a[1], b[1]) for a, b in zip(alone, other))
+
+
+@pytest.mark.parametrize("barostat", [
+    lambda: openmm.MonteCarloBarostat(1.0, 120.0, 5),
+    lambda: openmm.MonteCarloAnisotropicBarostat(openmm.Vec3(1, 1, 1), 120.0, True, True, True, 5),
+    lambda: openmm.MonteCarloMembraneBarostat(1.0, 0.0, 120.0, openmm.MonteCarloMembraneBarostat.XYIsotropic,
+                                              openmm.MonteCarloMembraneBarostat.ZFree, 5),
+    lambda: openmm.MonteCarloFlexibleBarostat(1.0, 120.0, 5),
+])
+def test_a_temperature_swap_reaches_every_kind_of_barostat(barostat):
+    # each Monte Carlo barostat reads its temperature from a context parameter of its own name
+    system, grid = _argon_box(barostat())
+    walker = Walker(0, system, (), grid, np.diag([3.0, 3.0, 3.0]), Condition(0, 120.0, (), ()), timestep=0.005,
+                    friction=1.0, platform=PlatformChoice("Reference", {}), seed=3)
+    walker.apply(Condition(1, 150.0, (), ()))
+    name = type(system.getForce(system.getNumForces() - 1)).Temperature()
+    assert walker.context.getParameter(name) == pytest.approx(150.0)
+    walker.step(10)

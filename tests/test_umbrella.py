@@ -468,9 +468,10 @@ def test_samples_beyond_analysis_memory_are_thinned_evenly_and_stay_right(one_wi
     protocol, folder, full = one_window
     n_full = int(full.samples_k.sum())
     monkeypatch.setattr(boost.analysis, "MBAR_COPIES", int(0.6 * 2**30 / (8 * n_full / 4)))
-    with pytest.warns(BoostWarning, match=r"MBAR uses every [45]th of the \d+ uncorrelated samples"):
+    with pytest.warns(BoostWarning, match=r"MBAR uses \d+ of the \d+ uncorrelated samples \(1 in [45], evenly"):
         thinned = analyse_run(folder, energy_unit="kT")
     assert n_full / 5 <= thinned.samples_k.sum() <= n_full / 3.9
+    assert thinned.thinning_k.tolist() in ([4], [5]) and full.thinning_k.tolist() == [1]
     # source: exact, quadrature with scipy via boost.models; fewer samples, wider error bars
     exact = _model(protocol).compute_exact_populations(TEMPERATURE, HALF_LINES)
     basins = thinned.basins

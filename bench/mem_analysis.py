@@ -11,12 +11,14 @@ boost.store.Ledger.record_cycle into a run folder with the protocol copy.
 boost.analysis.analyse_run then runs in a fresh subprocess; its peak RSS (VmHWM) is
 reported for two kinds of data: correlated (AR(1) coefficient 0.9, statistical
 inefficiency about 19, as MD gives; the analysis keeps about 1 sample in 19) and
-uncorrelated (coefficient 0: every sample is kept, the worst case for MBAR's memory).
-With --stages, the peak of each analysis stage is measured with tracemalloc.
+uncorrelated (coefficient 0: every sample is uncorrelated, the worst case for MBAR's
+memory; at the default analysis.memory of 1 GiB the analysis thins them evenly to what
+fits, and says so; --memory-gib 8 shows the unthinned cost). With --stages, the peak of
+each analysis stage is measured with tracemalloc.
 
 Target: peak RSS <= 1 GiB.
 
-Run: python bench/mem_analysis.py [--cycles 100000] [--rho 0.9 0.0] [--stages]
+Run: python bench/mem_analysis.py [--cycles 100000] [--rho 0.9 0.0] [--stages] [--memory-gib G]
 """
 
 import argparse
@@ -66,13 +68,15 @@ resource.setrlimit(resource.RLIMIT_AS, ({cap}, {cap}))
 sys.path.insert(0, {repo!r})
 from boost.analysis import analyse_run
 start = time.perf_counter()
-with warnings.catch_warnings():
-    warnings.simplefilter("ignore")
-    result = analyse_run({folder!r})
+with warnings.catch_warnings(record=True) as caught:
+    warnings.simplefilter("always")
+    result = analyse_run({folder!r}, memory={memory!r})
 seconds = time.perf_counter() - start
 hwm = [l for l in open("/proc/self/status") if l.startswith("VmHWM")][0].split()[1]
 print("RESULT " + json.dumps({{"seconds": seconds, "vmhwm_kib": int(hwm),
-      "samples": int(result.samples_k.sum()), "g_mean": float(result.g_k.mean())}}))
+      "samples": int(result.samples_k.sum()), "g_mean": float(result.g_k.mean()),
+      "thinning": int(result.thinning_k.max()),
+      "warnings": [str(w.message) for w in caught if "MBAR uses" in str(w.message)]}}))
 """
 
 STAGES = r"""
@@ -145,11 +149,11 @@ def write_synthetic_ledger(folder, n_cycles, rho, seed=12345):
     return time.perf_counter() - start
 
 
-def analyse_in_child(folder):
+def analyse_in_child(folder, memory):
     """(child's result dict, parent's RUSAGE_CHILDREN peak in KiB) for analyse_run(folder)."""
     import resource
 
-    code = CHILD.format(repo=str(benchlib.REPO), folder=str(folder), cap=SAFETY_CAP)
+    code = CHILD.format(repo=str(benchlib.REPO), folder=str(folder), cap=SAFETY_CAP, memory=memory)
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     children_kib = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     line = next((l for l in done.stdout.splitlines() if l.startswith("RESULT ")), None)
@@ -174,6 +178,8 @@ def main():
     parser.add_argument("--cycles", type=int, default=100_000, help="samples per window")
     parser.add_argument("--rho", type=float, nargs="+", default=[0.9, 0.0], help="AR(1) coefficients to try")
     parser.add_argument("--stages", action="store_true", help="tracemalloc peak per analysis stage")
+    parser.add_argument("--memory-gib", type=float, default=None,
+                        help="analysis memory (analyse_run's memory=; default: the protocol's, 1 GiB)")
     args = parser.parse_args()
     benchlib.describe_machine("Memory: analyse_run on a SYNTHETIC 24-window x 10^5-sample ledger")
     rows = []
@@ -185,15 +191,19 @@ def main():
             print(f"rho {rho}: wrote {N_WINDOWS} x {args.cycles} samples with Ledger.record_cycle in "
                   f"{seconds:.0f} s ({seconds / args.cycles * 1e6:.0f} µs per cycle); ledger {size / 2**20:.0f} MiB",
                   flush=True)
-            result, children_kib = analyse_in_child(folder)
+            memory = None if args.memory_gib is None else args.memory_gib * 2**30
+            result, children_kib = analyse_in_child(folder, memory)
             if result is None:
                 peak = math.inf
-                rows.append((f"{rho}", "-", "-", "-", f"> {SAFETY_CAP / 2**20:.0f} (MemoryError at the cap)",
+                rows.append((f"{rho}", "-", "-", "-", "-", f"> {SAFETY_CAP / 2**20:.0f} (MemoryError at the cap)",
                              f"{children_kib / 1024:.0f}", "MISS"))
                 print(f"  analyse_run: MemoryError under the {SAFETY_CAP / 2**30:.0f} GiB address-space cap", flush=True)
             else:
                 peak = result["vmhwm_kib"] * 1024
-                rows.append((f"{rho}", f"{result['g_mean']:.1f}", f"{result['samples']}", f"{result['seconds']:.1f}",
+                for message in result["warnings"]:
+                    print(f"  warning: {message}")
+                rows.append((f"{rho}", f"{result['g_mean']:.1f}", f"{result['samples']}", f"{result['thinning']}",
+                             f"{result['seconds']:.1f}",
                              f"{peak / 2**20:.0f}", f"{children_kib / 1024:.0f}",
                              benchlib.verdict(peak, LIMIT, at_least=False)))
                 print(f"  analyse_run: {result['seconds']:.1f} s, peak RSS {peak / 2**20:.0f} MiB", flush=True)
@@ -204,7 +214,8 @@ def main():
             for path in folder.iterdir():
                 path.unlink()
     print()
-    benchlib.print_table(("AR(1) rho", "mean g (cycles)", "samples kept", "analysis s", "peak RSS MiB (VmHWM)",
+    benchlib.print_table(("AR(1) rho", "mean g (cycles)", "samples to MBAR", "1 in (memory thinning)",
+                          "analysis s", "peak RSS MiB (VmHWM)",
                           "largest child so far, MiB (getrusage)", "target <= 1024 MiB"), rows)
 
 

@@ -18,6 +18,7 @@ REPO = Path(__file__).resolve().parents[1]
 if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
+import boost.cores                                # noqa: E402
 from boost.protocol import load_protocol          # noqa: E402
 from boost.scheduler import Scheduler, make_plan  # noqa: E402
 
@@ -35,7 +36,7 @@ def cpu_model():
 
 
 def usable_cores():
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    return len(boost.cores.usable_cores())
 
 
 def git_revision():

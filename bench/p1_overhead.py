@@ -147,7 +147,6 @@ class _Interleaved:
 
     def propagate(self, n_steps, with_positions=False):
         self._lap(self.boost)
-        self.mark = (time.perf_counter(), time.process_time())
         self.bare.cycle()
         self._lap(self.plain)
         return self.workers.propagate(n_steps, with_positions)

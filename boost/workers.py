@@ -285,7 +285,7 @@ def rank_walkers(n_walkers, comm, rank):
 class MPIWorkers(_Workers):
     """Walkers spread over MPI ranks; rank 0 runs the scheduler and hosts walkers too.
 
-    Each rank keeps its walkers in local workers (processes where the platform needs them).
+    Each rank keeps its walkers in local workers on its share of the cores (cores_of_rank).
     """
 
     def __init__(self, setup, comm, count, cores=None):

@@ -40,7 +40,7 @@ coordinates:
   phi: {{dihedral: ["resid 0 and name C", "resid 1 and name N", "resid 1 and name CA", "resid 1 and name C"]}}
   psi: {{dihedral: ["resid 1 and name N", "resid 1 and name CA", "resid 1 and name C", "resid 2 and name N"]}}
 temperatures: {{lowest: 300 K, highest: 450 K, count: {walkers}}}
-exchange: {{scheme: neighbours}}
+exchange: {{pairs: adjacent}}
 run:
   cycle: {cycle} ps
   production: {production} ps

@@ -44,7 +44,7 @@ coordinates:
   psi: {{dihedral: ["resid 1 and name N", "resid 1 and name CA", "resid 1 and name C", "resid 2 and name N"]}}
 umbrella:
   phi: {{centres: [-150 deg, -110 deg, -70 deg, -30 deg], spring: 300 kJ/mol/rad**2}}
-exchange: {{scheme: neighbours}}
+exchange: {{pairs: adjacent}}
 run:
   cycle: 1 ps
   production: {production} ps

@@ -82,7 +82,7 @@ title: P4 double well, temperature replica exchange (as double-well-tempering.ya
 seed: 8
 friction: 5/ps
 temperatures: {{lowest: 300 K, highest: 1500 K, count: 8}}
-exchange: {{scheme: neighbours}}
+exchange: {{pairs: adjacent}}
 run: {{cycle: 0.2 ps, equilibration: 10 ps, production: {production}}}
 """,
     "dw plain MD": """\

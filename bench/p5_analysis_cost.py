@@ -39,7 +39,7 @@ run:
   cycle: 0.5 ps
   equilibration: 10 ps
   production: {production} ps
-  frame_interval: 5 ps
+  frame_every: 5 ps
 basins:
   C7eq: {{phi: [-180 deg, 0 deg]}}
   C7ax: {{phi: [0 deg, 180 deg]}}

@@ -1,4 +1,4 @@
-"""Bias potentials w(ξ) on coordinates: harmonic umbrellas and flat-bottom walls.
+"""Bias potentials w(ξ) on coordinates: harmonic umbrellas and flat-bottom restraints.
 
 Each bias exists as one OpenMM ``CustomCVForce`` (whatever the coordinate, including
 combinations) and as a numpy function of coordinate values; the two use the same
@@ -11,7 +11,7 @@ Umbrella
     [−π, π) by d − 2π⌊(d + π)/2π⌋, which keeps w continuous across ±π. The centre ξ₀
     and spring k are OpenMM global parameters (:func:`centre_parameter`,
     :func:`spring_parameter`), so changing a window only calls ``Context.setParameter``.
-Wall
+Flat bottom
     w = ½ k [max(0, ξ − upper)² + max(0, lower − ξ)²], zero inside [lower, upper];
     either bound may be absent. The constants are written into the expression.
 
@@ -94,24 +94,24 @@ def build_umbrella_force(coordinate, system, *, centre, spring):
 
 def _check_bounds(coordinate, lower, upper):
     if lower is None and upper is None:
-        raise ProtocolError(f"coordinate {coordinate.name!r}: a wall needs a lower bound, "
+        raise ProtocolError(f"coordinate {coordinate.name!r}: a flat-bottom restraint needs a lower bound, "
                             "an upper bound or both; got neither.")
     if lower is not None and upper is not None and lower > upper:
-        raise ProtocolError(f"coordinate {coordinate.name!r}: the wall's lower bound must not "
+        raise ProtocolError(f"coordinate {coordinate.name!r}: the flat-bottom restraint's lower bound must not "
                             f"exceed its upper bound; got lower={lower!r}, upper={upper!r}.")
     if coordinate.periodic:
-        # On a circle a flat-bottom wall on the value in (-π, π] would jump at ±π.
-        raise ProtocolError(f"coordinate {coordinate.name!r}: walls on a periodic coordinate "
-                            "(a dihedral) are not supported; use an umbrella instead.")
+        # On a circle a flat-bottom restraint on the value in (-π, π] would jump at ±π.
+        raise ProtocolError(f"coordinate {coordinate.name!r}: flat-bottom restraints on a periodic "
+                            "coordinate (a dihedral) are not supported; use an umbrella instead.")
 
 
-def build_wall_force(coordinate, system, *, lower=None, upper=None, spring):
-    """A flat-bottom wall on a coordinate, as one OpenMM force.
+def build_flat_bottom_force(coordinate, system, *, lower=None, upper=None, spring):
+    """A flat-bottom restraint on a coordinate, as one OpenMM force.
 
     Parameters
     ----------
     coordinate : boost.coordinates.Coordinate
-        Not periodic (a wall on a dihedral would be discontinuous at ±π).
+        Not periodic (a flat bottom on a dihedral would be discontinuous at ±π).
     system : openmm.System
     lower, upper : float or None, in nm or rad
         Bounds of the flat region; at least one must be given.
@@ -132,7 +132,7 @@ def build_wall_force(coordinate, system, *, lower=None, upper=None, spring):
         excesses.append(f"max(0, {_literal(lower)} - value)^2")
     energy = f"0.5*{_literal(spring)}*({' + '.join(excesses)})"
     force = _cv_force(coordinate, system, energy)
-    force.setName(f"wall on {coordinate.name}")
+    force.setName(f"flat bottom on {coordinate.name}")
     return force
 
 
@@ -157,8 +157,8 @@ def compute_umbrella_energy(values, *, centre, spring, periodic):
     return 0.5 * spring * d**2
 
 
-def compute_wall_energy(values, *, lower, upper, spring):
-    """Wall energy for coordinate values, the formula of :func:`build_wall_force`.
+def compute_flat_bottom_energy(values, *, lower, upper, spring):
+    """Flat-bottom restraint energy for coordinate values, the formula of :func:`build_flat_bottom_force`.
 
     Parameters
     ----------

@@ -5,7 +5,7 @@ and spring constant s_ka. Its reduced potential of a configuration x is
 
     u_k(x) = β_k [ U(x) + Σ_a ½ s_ka d(ξ_a(x), c_ka)² + p V(x) ],   β_k = 1 / (k_B T_k)
 
-where U includes the walls (they are part of every condition's ensemble), d is the
+where U includes the flat-bottom restraints (they are part of every condition's ensemble), d is the
 difference, wrapped into [-π, π) on a periodic coordinate, and the pV term is present
 only at constant pressure. The unbiased condition at temperature T drops the umbrella
 sum. Arrays: u_kr[k, r] reduced potential of walker r's configuration in condition k, in
@@ -86,7 +86,7 @@ def compute_reduced_potentials(conditions, potential_r, values_ra, periodic_a, *
 
     Parameters
     ----------
-    potential_r : ndarray, shape (n_walkers,), in kJ/mol (walls included, umbrellas not)
+    potential_r : ndarray, shape (n_walkers,), in kJ/mol (flat-bottom restraints included, umbrellas not)
     volume_r : ndarray, shape (n_walkers,), in nm³, used only when ``pressure`` (bar) is set
     """
     potential_r = np.asarray(potential_r, dtype=float)

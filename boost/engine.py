@@ -13,7 +13,7 @@ import numpy as np
 import openmm
 from openmm import unit
 
-from .bias import build_umbrella_force, build_wall_force, centre_parameter, spring_parameter
+from .bias import build_umbrella_force, build_flat_bottom_force, centre_parameter, spring_parameter
 from .cores import pinned, usable_cores
 from .exceptions import ProtocolError, SimulationError
 
@@ -39,7 +39,7 @@ def derive_seeds(seed, n_walkers):
 
 
 def prepare_system(built, protocol, coordinates):
-    """A copy of the built System with the walls, the umbrella forces and a barostat added.
+    """A copy of the built System with the flat-bottom restraints, the umbrella forces and a barostat added.
 
     Returns
     -------
@@ -51,9 +51,9 @@ def prepare_system(built, protocol, coordinates):
         if force.getForceGroup() == BIAS_GROUP:
             raise ProtocolError(f"{protocol.path}: system uses force group {BIAS_GROUP}, which boost "
                                 "reserves for umbrella forces.")
-    for wall in protocol.walls:
-        system.addForce(build_wall_force(coordinates[wall.coordinate], system, lower=wall.lower,
-                                         upper=wall.upper, spring=wall.spring))
+    for restraint in protocol.flat_bottom:
+        system.addForce(build_flat_bottom_force(coordinates[restraint.coordinate], system, lower=restraint.lower,
+                                                upper=restraint.upper, spring=restraint.spring))
     for axis in protocol.umbrella:
         force = build_umbrella_force(coordinates[axis.coordinate], system,
                                      centre=axis.centres[0], spring=axis.springs[0])
@@ -154,7 +154,7 @@ def shares_random_stream(platform_name, system):
 class Observation:
     """What a walker reports after propagating: energies without umbrellas."""
 
-    potential: float            # kJ/mol, walls included, umbrellas excluded
+    potential: float            # kJ/mol, flat-bottom restraints included, umbrellas excluded
     positions: np.ndarray       # (n_atoms, 3) nm
     box_vectors: np.ndarray | None  # (3, 3) nm
     volume: float | None        # nm³

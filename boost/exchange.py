@@ -51,7 +51,7 @@ def neighbour_pairs(ladder_shape, cycle):
             for a, b in zip(lower[step].ravel(), lower[step + 1].ravel())]
 
 
-def swap_neighbours(u_kr, assignment, ladder_shape, cycle, rng, *, attempts=1):
+def swap_adjacent(u_kr, assignment, ladder_shape, cycle, rng, *, attempts=1):
     """Attempt swaps between walkers holding neighbouring conditions.
 
     Returns
@@ -74,7 +74,7 @@ def swap_neighbours(u_kr, assignment, ladder_shape, cycle, rng, *, attempts=1):
     return assignment, SwapTally(tuple((a, b, n, m) for (a, b), (n, m) in sorted(counts.items())))
 
 
-def swap_all_pairs(u_kr, assignment, rng, *, attempts=None):
+def swap_any_pairs(u_kr, assignment, rng, *, attempts=None):
     """Many random pair swaps among all walkers, approaching a fresh draw of the assignment.
 
     Chodera & Shirts, J. Chem. Phys. 135, 194110 (2011), doi:10.1063/1.3660669: repeated

@@ -29,7 +29,7 @@ _AXES = {"x": 0, "y": 1, "z": 2}
 _RANGES = {"dihedral": (-math.pi, math.pi, "-180 deg to 180 deg"), "angle": (0.0, math.pi, "0 deg to 180 deg"),
            "distance": (0.0, math.inf, "0 nm or more")}
 TOP_KEYS = ("protocol", "title", "system", "seed", "temperature", "timestep", "friction",
-            "pressure", "platform", "coordinates", "walls", "umbrella", "temperatures",
+            "pressure", "platform", "coordinates", "flat_bottom", "umbrella", "temperatures",
             "exchange", "run", "basins", "analysis")
 
 
@@ -66,9 +66,18 @@ class CoordinateSpec:
         return "spring_angle" if self.unit == "rad" else "spring_length"
 
 
+#: Keys of earlier versions of the schema and what replaces them (an error names the new one).
+RENAMED_TOP_KEYS = {"walls": "flat_bottom (a list of {coordinate, from, to, spring})"}
+RENAMED_RUN_KEYS = {"checkpoint_interval": "run.checkpoint_every", "frame_interval": "run.frame_every"}
+EXCHANGE_PAIRS = ("adjacent", "any")
+
+
 @dataclass(frozen=True)
-class Wall:
-    """A flat-bottom wall on a coordinate, present in every condition (part of the ensemble)."""
+class FlatBottom:
+    """A flat-bottom restraint on a coordinate: zero between its bounds, harmonic outside.
+
+    Present in every condition, so part of the ensemble that is analysed.
+    """
 
     coordinate: str
     lower: float | None
@@ -87,7 +96,7 @@ class UmbrellaAxis:
 
 @dataclass(frozen=True)
 class ExchangeSettings:
-    scheme: str            # 'neighbours' or 'all_pairs'
+    pairs: str             # 'adjacent' (neighbours on the ladder) or 'any' (every pair)
     attempts: int          # swap attempts per cycle
 
 
@@ -145,7 +154,7 @@ class Protocol:
     pressure: float | None
     system: Node
     coordinates: dict
-    walls: tuple
+    flat_bottom: tuple     # tuple[FlatBottom, ...]
     umbrella: tuple
     temperatures: tuple
     exchange: ExchangeSettings | None
@@ -180,7 +189,8 @@ def parse_protocol(text, path):
     """Validate protocol ``text`` as if read from ``path`` (for messages and relative paths)."""
     path = Path(path)
     root = parse_yaml(text, path)
-    root.mapping(allowed=TOP_KEYS, required=("protocol", "system", "seed", "temperature", "timestep", "run"))
+    root.mapping(allowed=TOP_KEYS, required=("protocol", "system", "seed", "temperature", "timestep", "run"),
+                 renamed=RENAMED_TOP_KEYS)
     version = root.get("protocol")
     if isinstance(version.value, bool) or version.value != SCHEMA_VERSION:   # true == 1 in Python
         version.fail(f"the schema version {SCHEMA_VERSION}")
@@ -202,7 +212,7 @@ def parse_protocol(text, path):
         temperature=temperature, timestep=timestep,
         friction=root.get("friction", "1/ps").quantity("rate", positive=True),
         pressure=pressure, system=root.get("system"), coordinates=coordinates,
-        walls=_read_walls(root.get("walls", []), coordinates),
+        flat_bottom=_read_flat_bottom(root.get("flat_bottom", []), coordinates),
         umbrella=umbrella, temperatures=temperatures, exchange=exchange,
         platform=_read_platform(root.get("platform", {})),
         run=_read_run(root.get("run"), timestep),
@@ -290,22 +300,24 @@ def _coordinate(node, coordinates):
 
 
 # -- biases ---------------------------------------------------------------------------
-def _read_walls(node, coordinates):
-    walls = []
+def _read_flat_bottom(node, coordinates):
+    restraints = []
     for entry in node.sequence():
-        entry.mapping(allowed=("coordinate", "lower", "upper", "spring"), required=("coordinate", "spring"))
+        entry.mapping(allowed=("coordinate", "from", "to", "spring"), required=("coordinate", "spring"),
+                      renamed={"lower": "'from'", "upper": "'to'"})
         coordinate = _coordinate(entry.get("coordinate"), coordinates)
         if coordinate.periodic:
-            entry.get("coordinate").fail("a non-periodic coordinate (walls on a dihedral are not supported)")
+            entry.get("coordinate").fail("a non-periodic coordinate (flat-bottom restraints on a dihedral "
+                                         "are not supported)")
         bounds = [entry.get(key).quantity(coordinate.value_dimension) if entry.has(key) else None
-                  for key in ("lower", "upper")]
+                  for key in ("from", "to")]
         if bounds == [None, None]:
-            entry.fail("a wall with a 'lower' or an 'upper' bound (or both)")
+            entry.fail("a flat-bottom restraint with a 'from' or a 'to' bound (or both)")
         if None not in bounds and bounds[0] >= bounds[1]:
-            entry.get("upper").fail("above 'lower'")
+            entry.get("to").fail("above 'from'")
         spring = entry.get("spring").quantity(coordinate.spring_dimension, positive=True)
-        walls.append(Wall(coordinate.name, bounds[0], bounds[1], spring))
-    return tuple(walls)
+        restraints.append(FlatBottom(coordinate.name, bounds[0], bounds[1], spring))
+    return tuple(restraints)
 
 
 def _read_umbrella(node, coordinates):
@@ -374,9 +386,10 @@ def _read_temperatures(node, temperature):
 def _read_exchange(node):
     if node.value is None:
         return None
-    node.mapping(allowed=("scheme", "attempts"))
-    scheme = node.get("scheme", "neighbours").text(choices=("neighbours", "all_pairs"))
-    return ExchangeSettings(scheme=scheme, attempts=node.get("attempts", 1).integer(minimum=1))
+    node.mapping(allowed=("pairs", "attempts"),
+                 renamed={"scheme": "exchange.pairs (adjacent: neighbours on the ladder; any: every pair)"})
+    pairs = node.get("pairs", "adjacent").text(choices=EXCHANGE_PAIRS)
+    return ExchangeSettings(pairs=pairs, attempts=node.get("attempts", 1).integer(minimum=1))
 
 
 def _read_platform(node):
@@ -409,15 +422,16 @@ def _cycles(node, steps_per_cycle, timestep, what):
 
 
 def _read_run(node, timestep):
-    node.mapping(allowed=("cycle", "equilibration", "production", "frame_interval",
-                          "checkpoint_interval", "minimise", "retries"), required=("production",))
+    node.mapping(allowed=("cycle", "equilibration", "production", "frame_every",
+                          "checkpoint_every", "minimise", "retries"), required=("production",),
+                 renamed=RENAMED_RUN_KEYS)
     steps_per_cycle = _steps(node.get("cycle", "1 ps"), timestep, "a cycle")
     if steps_per_cycle < 1:
         node.get("cycle", "1 ps").fail("at least one timestep")
     production = _cycles(node.get("production"), steps_per_cycle, timestep, "the production")
     if production < 1:
         node.get("production").fail("at least one cycle long")
-    frames = node.get("frame_interval", None)
+    frames = node.get("frame_every", None)
     return RunSettings(
         steps_per_cycle=steps_per_cycle,
         equilibration_cycles=_cycles(node.get("equilibration", "0 ps"), steps_per_cycle, timestep,
@@ -425,7 +439,7 @@ def _read_run(node, timestep):
         production_cycles=production,
         frame_every=0 if frames.value is None else max(
             1, _cycles(frames, steps_per_cycle, timestep, "the frame interval")),
-        checkpoint_every=max(1, _cycles(node.get("checkpoint_interval", "10 ps"), steps_per_cycle,
+        checkpoint_every=max(1, _cycles(node.get("checkpoint_every", "10 ps"), steps_per_cycle,
                                         timestep, "the checkpoint interval")),
         minimise=node.get("minimise", True).boolean(),
         retries=node.get("retries", 0).integer(minimum=0),

@@ -19,7 +19,7 @@ from tqdm import tqdm
 from .conditions import build_conditions, compute_reduced_potentials
 from .engine import PlatformChoice, choose_platform, derive_seeds, prepare_system
 from .exceptions import BoostError, RunFolderError, SimulationError
-from .exchange import swap_all_pairs, swap_neighbours
+from .exchange import swap_any_pairs, swap_adjacent
 from .protocol import resolve_coordinates
 from .provenance import describe_environment, describe_git
 from .store import (LEDGER, PROTOCOL, PROVENANCE, FolderLock, FrameWriter, Ledger, check_folder_for,
@@ -251,10 +251,10 @@ class Scheduler:
         settings = self.plan.protocol.exchange
         if settings is None:
             return assignment, ()
-        if settings.scheme == "all_pairs":
-            new, tally = swap_all_pairs(u_kr, assignment, rng, attempts=settings.attempts * len(assignment) ** 3)
+        if settings.pairs == "any":
+            new, tally = swap_any_pairs(u_kr, assignment, rng, attempts=settings.attempts * len(assignment) ** 3)
         else:
-            new, tally = swap_neighbours(u_kr, assignment, self.ladder_shape, cycle, rng,
+            new, tally = swap_adjacent(u_kr, assignment, self.ladder_shape, cycle, rng,
                                          attempts=settings.attempts)
         return new, tally.pairs
 

@@ -121,10 +121,18 @@ class Node:
         return f"{self.path}.{key}" if self.path else str(key)
 
     # -- mappings ---------------------------------------------------------------------
-    def mapping(self, allowed=None, required=()):
-        """Check this is a mapping whose keys are all in ``allowed`` and include ``required``."""
+    def mapping(self, allowed=None, required=(), renamed=None):
+        """Check this is a mapping whose keys are all in ``allowed`` and include ``required``.
+
+        ``renamed`` maps a retired spelling to what replaces it; such a key gets a message
+        naming the replacement (no silent alias: the file must be changed).
+        """
         if not isinstance(self.value, dict):
             self.fail("a mapping of keys to values")
+        for key, replacement in (renamed or {}).items():
+            if key in self.value:
+                raise ProtocolError(f"{where(self.file, self._child_path(key))} is no longer read; "
+                                    f"write {replacement} instead.")
         if allowed is not None:
             for key in self.value:
                 if key not in allowed:

@@ -24,7 +24,7 @@ def describe_plan(plan):
     temperatures = ", ".join(f"{t:.1f}" for t in protocol.temperatures)
     lines.append(f"temperatures (K) {temperatures}")
     lines.append(f"conditions {len(plan.conditions)}, walkers {plan.n_walkers}, "
-                 f"swaps {'every cycle (' + protocol.exchange.scheme + ')' if protocol.exchange else 'none'}")
+                 f"swaps {'every cycle (' + protocol.exchange.pairs + ' pairs)' if protocol.exchange else 'none'}")
     cycle_ps = run.steps_per_cycle * protocol.timestep
     lines.append(f"cycles    {run.equilibration_cycles} equilibration + {run.production_cycles} production, "
                  f"{run.steps_per_cycle} steps ({cycle_ps:g} ps) each; "

@@ -39,7 +39,7 @@ run:
   cycle: 0.1 ps
   equilibration: 1 ps
   production: 5 ps
-  frame_interval: 1 ps
+  frame_every: 1 ps
 basins:
   left: {x: [-1 nm, 0 nm]}
   right: {x: [0 nm, 1 nm]}

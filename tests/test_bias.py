@@ -8,10 +8,10 @@ import pytest
 
 from boost.bias import (
     build_umbrella_force,
-    build_wall_force,
+    build_flat_bottom_force,
     centre_parameter,
     compute_umbrella_energy,
-    compute_wall_energy,
+    compute_flat_bottom_energy,
     spring_parameter,
 )
 from boost.coordinates import Coordinate, compute_coordinate_values
@@ -149,30 +149,30 @@ WALLS = [("distance", "both"), ("distance", "lower"), ("distance", "upper"),
 
 @pytest.mark.parametrize("periodic", [False, True])
 @pytest.mark.parametrize("kind, sides", WALLS)
-def test_wall_numpy_matches_openmm(kind, sides, periodic):
+def test_flat_bottom_numpy_matches_openmm(kind, sides, periodic):
     coordinate = COORDINATES[kind]
     xyz = frames(seed=9)
     values = values_of(coordinate, xyz, periodic)
     low, high = np.quantile(values, [0.3, 0.7])  # bounds that leave frames on every side
     lower = low if sides in ("both", "lower") else None
     upper = high if sides in ("both", "upper") else None
-    context = make_context(lambda s: build_wall_force(coordinate, s, lower=lower, upper=upper,
+    context = make_context(lambda s: build_flat_bottom_force(coordinate, s, lower=lower, upper=upper,
                                                       spring=400.0), periodic)
     # source: OpenMM (library) CustomCVForce on the Reference platform, double precision
     expected = energies_of(context, xyz)
-    ours = compute_wall_energy(values, lower=lower, upper=upper, spring=400.0)
+    ours = compute_flat_bottom_energy(values, lower=lower, upper=upper, spring=400.0)
     np.testing.assert_allclose(ours, expected, rtol=0, atol=1e-6)
     inside = (values >= (lower if lower is not None else -np.inf)) & \
              (values <= (upper if upper is not None else np.inf))
-    # source: exact — a flat-bottom wall is zero inside its bounds and positive outside
+    # source: exact — a flat-bottom restraint is zero inside its bounds and positive outside
     assert np.all(expected[inside] == 0.0) and np.all(expected[~inside] > 0.0)
     assert inside.any() and (~inside).any()
 
 
-def test_wall_has_no_global_parameters():
+def test_flat_bottom_has_no_global_parameters():
     system = plain_system()
-    force = build_wall_force(COORDINATES["distance"], system, lower=0.2, upper=0.9, spring=100.0)
-    # source: the bias contract (wall constants are baked into the expression)
+    force = build_flat_bottom_force(COORDINATES["distance"], system, lower=0.2, upper=0.9, spring=100.0)
+    # source: the bias contract (flat-bottom constants are baked into the expression)
     assert force.getNumGlobalParameters() == 0
 
 
@@ -194,15 +194,15 @@ def test_periodic_umbrella_is_continuous_across_pi():
             compute_umbrella_energy(values, centre=centre, spring=spring, periodic=True), atol=1e-9)
 
 
-def test_bad_walls_are_protocol_errors():
+def test_bad_flat_bottoms_are_protocol_errors():
     system = plain_system()
     distance = COORDINATES["distance"]
-    # source: the bias contract (bounds in order, at least one bound, no walls on dihedrals)
+    # source: the bias contract (bounds in order, at least one bound, no flat bottom on dihedrals)
     with pytest.raises(ProtocolError, match="lower bound must not exceed"):
-        build_wall_force(distance, system, lower=1.0, upper=0.5, spring=10.0)
+        build_flat_bottom_force(distance, system, lower=1.0, upper=0.5, spring=10.0)
     with pytest.raises(ProtocolError, match="got neither"):
-        build_wall_force(distance, system, spring=10.0)
+        build_flat_bottom_force(distance, system, spring=10.0)
     with pytest.raises(ProtocolError, match="periodic coordinate"):
-        build_wall_force(PHI, system, lower=-1.0, upper=1.0, spring=10.0)
+        build_flat_bottom_force(PHI, system, lower=-1.0, upper=1.0, spring=10.0)
     with pytest.raises(ProtocolError, match="spring constant"):
         build_umbrella_force(distance, system, centre=0.5, spring=-1.0)

@@ -55,6 +55,11 @@ def test_check_prints_plan(write_protocol, tmp_path):
     ("seed: 1", "sead: 1", r"protocol\.yaml: sead is not a known key\. Did you mean 'seed'\?"),
     ("system: alanine-vacuum", "system: nowhere.yaml", r"nowhere\.yaml"),
     ("seed: 1", "seed: [1", r"protocol\.yaml: is not valid YAML at line \d+"),
+    # spellings of an earlier schema: the message names the key that replaces them
+    ("run: {cycle: 0.1 ps, production: 0.5 ps}", "run: {cycle: 0.1 ps, production: 0.5 ps, checkpoint_interval: 1 ps}",
+     r"protocol\.yaml: run\.checkpoint_interval is no longer read; write run\.checkpoint_every instead"),
+    ("umbrella:", "walls:\n  - {coordinate: phi, lower: 0 deg, spring: 1 kJ/mol/rad**2}\numbrella:",
+     r"protocol\.yaml: walls is no longer read; write flat_bottom"),
 ])
 def test_bad_protocol_is_one_line(write_protocol, tmp_path, old, new, pattern):
     path = write_protocol(ALANINE.replace(old, new))

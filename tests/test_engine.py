@@ -24,8 +24,8 @@ coordinates:
   phi: {dihedral: ["resid 0 and name C", "resid 1 and name N", "resid 1 and name CA", "resid 1 and name C"]}
   psi: {dihedral: ["resid 1 and name N", "resid 1 and name CA", "resid 1 and name C", "resid 2 and name N"]}
   d: {distance: [{centre: "resid 0"}, {centre: "resid 2"}]}
-walls:
-  - {coordinate: d, upper: 0.5 nm, spring: 1000 kJ/mol/nm**2}
+flat_bottom:
+  - {coordinate: d, to: 0.5 nm, spring: 1000 kJ/mol/nm**2}
 umbrella:
   phi: {centres: [-170 deg, 175 deg], spring: 150 kJ/mol/rad**2}
   psi: {centres: [0 deg], spring: 50 kJ/mol/rad**2}
@@ -67,11 +67,11 @@ def test_reduced_potentials_match_openmm_in_every_condition(alanine):
         assert u_kr[condition.index, 0] / beta(condition.temperature) == pytest.approx(total, abs=1e-6)
 
 
-def test_reported_potential_excludes_umbrellas_but_includes_walls(alanine):
+def test_reported_potential_excludes_umbrellas_but_includes_flat_bottom(alanine):
     protocol, built, coordinates, system, names = alanine
     groups = {f.getForceGroup() for f in system.getForces() if isinstance(f, openmm.CustomCVForce)}
     assert groups == {0, BIAS_GROUP}     # the wall in the physical group, umbrellas in the bias group
-    condition = Condition(0, 300.0, (0.0, 0.0), (0.0, 0.0))   # springs off: only walls remain
+    condition = Condition(0, 300.0, (0.0, 0.0), (0.0, 0.0))   # springs off: only the flat bottom remains
     walker = Walker(0, system, names, built.positions, None, condition, timestep=0.002, friction=1.0,
                     platform=PlatformChoice("Reference", {}), seed=7)
     assert walker.observe().potential == pytest.approx(_total_energy(walker), abs=1e-9)

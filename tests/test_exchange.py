@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy.special import betainc
 
-from boost.exchange import (accept_swap, compute_swap_log_ratio, neighbour_pairs, swap_all_pairs,
-                            swap_neighbours)
+from boost.exchange import (accept_swap, compute_swap_log_ratio, neighbour_pairs, swap_any_pairs,
+                            swap_adjacent)
 
 
 def temperature_u_kr(beta_k, energy_r):
@@ -75,8 +75,8 @@ def _exact_permutation_weights(u_kr):
     return perms, weights / weights.sum()
 
 
-@pytest.mark.parametrize("scheme", ["neighbours", "all_pairs"])
-def test_detailed_balance_on_frozen_configurations(scheme):
+@pytest.mark.parametrize("pairs", ["adjacent", "any"])
+def test_detailed_balance_on_frozen_configurations(pairs):
     # exact: the stationary distribution of the permutation, enumerated (detailed balance).
     rng = np.random.default_rng(7)
     u_kr = rng.normal(0, 1.0, (3, 3))
@@ -85,10 +85,10 @@ def test_detailed_balance_on_frozen_configurations(scheme):
     assignment = [0, 1, 2]
     n_cycles = 30000
     for cycle in range(n_cycles):
-        if scheme == "neighbours":
-            assignment, _ = swap_neighbours(u_kr, assignment, (3,), cycle, rng)
+        if pairs == "adjacent":
+            assignment, _ = swap_adjacent(u_kr, assignment, (3,), cycle, rng)
         else:
-            assignment, _ = swap_all_pairs(u_kr, assignment, rng, attempts=3)
+            assignment, _ = swap_any_pairs(u_kr, assignment, rng, attempts=3)
         counts[tuple(assignment)] += 1
     empirical = np.array([counts[p] for p in perms]) / n_cycles
     # correlated samples: allow ~5 binomial σ with a correlation allowance of 3
@@ -108,6 +108,6 @@ def test_neighbour_pairs_alternate_and_cover_the_ladder():
 
 def test_swap_tally_counts_attempts_and_acceptances():
     u_kr = np.zeros((4, 4))                           # every swap is neutral: always accepted
-    assignment, tally = swap_neighbours(u_kr, [0, 1, 2, 3], (4,), 0, np.random.default_rng(0))
+    assignment, tally = swap_adjacent(u_kr, [0, 1, 2, 3], (4,), 0, np.random.default_rng(0))
     assert assignment == [1, 0, 3, 2]
     assert tally.pairs == ((0, 1, 1, 1), (2, 3, 1, 1))

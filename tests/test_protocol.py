@@ -29,7 +29,7 @@ def test_umbrella_and_ladder(write_protocol, double_well_text):
 umbrella:
   x: {centres: {from: -0.15 nm, to: 0.15 nm, count: 7}, spring: 500 kJ/mol/nm**2}
 temperatures: {lowest: 300 K, highest: 600 K, count: 4}
-exchange: {scheme: neighbours}
+exchange: {pairs: adjacent}
 """
     protocol = load_protocol(write_protocol(text))
     axis = protocol.umbrella[0]
@@ -84,6 +84,11 @@ BAD = [
     ("left: {x: [-1 nm, 0 nm]}", "left: {x: [0 nm, -1 nm]}", r"basins\.left\.x must be \[lower, upper\]"),
     ("seed: 5\n", "seed: 5\nseed: 6\n", r"protocol\.yaml: is not valid YAML at line 6.*duplicate key 'seed'"),
     ("title: test double well", "title: [unclosed", r"protocol\.yaml: is not valid YAML at line \d+"),
+    # run keys of earlier schema versions
+    ("frame_every: 1 ps", "frame_interval: 1 ps",
+     r"protocol\.yaml: run\.frame_interval is no longer read; write run\.frame_every instead"),
+    ("frame_every: 1 ps", "checkpoint_interval: 1 ps",
+     r"protocol\.yaml: run\.checkpoint_interval is no longer read; write run\.checkpoint_every instead"),
     ("seed: 5", "seed: !!python/object:os.system 5", r"protocol\.yaml: is not valid YAML"),
 ]
 
@@ -106,12 +111,24 @@ BAD_EXTRA = [
     ("temperatures: [300 K, 290 K]\n", r"temperatures must be a strictly increasing list"),
     ("temperatures: [300 K]\n", r"temperatures must be a list of at least 2 items"),
     ("temperatures: [300 K, -3 K]\n", r"temperatures\[1\] must be positive"),
-    ("exchange: {scheme: neighbours}\n", r"protocol\.yaml: exchange must be used with a ladder"),
+    ("exchange: {pairs: adjacent}\n", r"protocol\.yaml: exchange must be used with a ladder"),
     ("umbrella:\n  x: {centres: [0 nm, 0 nm], spring: 1 kJ/mol/nm**2}\n", r"umbrella\.x must be windows that differ"),
     ("temperatures: [300 K, 400 K]\nexchange: {attempts: 0}\n", r"exchange\.attempts must be a whole number of at least 1"),
-    ("temperatures: [300 K, 400 K]\nexchange: {scheme: random}\n", r"exchange\.scheme must be one of 'neighbours', 'all_pairs'"),
-    ("walls:\n  - {coordinate: x, spring: 1 kJ/mol/nm**2}\n", r"walls\[0\] must be a wall with a 'lower' or an 'upper'"),
-    ("walls:\n  - {coordinate: x, lower: 1 nm, upper: 0 nm, spring: 1 kJ/mol/nm**2}\n", r"walls\[0\]\.upper must be above 'lower'"),
+    ("temperatures: [300 K, 400 K]\nexchange: {pairs: random}\n", r"exchange\.pairs must be one of 'adjacent', 'any'"),
+    ("flat_bottom:\n  - {coordinate: x, spring: 1 kJ/mol/nm**2}\n",
+     r"flat_bottom\[0\] must be a flat-bottom restraint with a 'from' or a 'to'"),
+    ("flat_bottom:\n  - {coordinate: x, from: 1 nm, to: 0 nm, spring: 1 kJ/mol/nm**2}\n",
+     r"flat_bottom\[0\]\.to must be above 'from'"),
+    # spellings of earlier schema versions: an error that names the replacement, no alias
+    ("walls:\n  - {coordinate: x, upper: 0.5 nm, spring: 1 kJ/mol/nm**2}\n",
+     r"protocol\.yaml: walls is no longer read; write flat_bottom \(a list of \{coordinate, from, to, spring\}\) instead"),
+    ("flat_bottom:\n  - {coordinate: x, upper: 0.5 nm, spring: 1 kJ/mol/nm**2}\n",
+     r"flat_bottom\[0\]\.upper is no longer read; write 'to' instead"),
+    ("flat_bottom:\n  - {coordinate: x, lower: 0.5 nm, spring: 1 kJ/mol/nm**2}\n",
+     r"flat_bottom\[0\]\.lower is no longer read; write 'from' instead"),
+    ("temperatures: [300 K, 400 K]\nexchange: {scheme: neighbours}\n",
+     r"exchange\.scheme is no longer read; write exchange\.pairs \(adjacent: neighbours on the ladder; any: every pair\)"),
+    ("temperatures: [300 K, 400 K]\nexchange: {pairs: all_pairs}\n", r"exchange\.pairs must be one of 'adjacent', 'any'"),
     ("analysis: {energy_unit: eV}\n", r"analysis\.energy_unit must be one of"),
     ("analysis: {memory: 100 MiB}\n", r"analysis\.memory must be at least 512 MiB"),
     ("analysis: {memory: 2 nm}\n", r"analysis\.memory must be an amount of memory"),

@@ -60,8 +60,8 @@ def _finite_numbers(protocol):
     yield protocol.temperatures
     for axis in protocol.umbrella:
         yield axis.centres + axis.springs
-    for wall in protocol.walls:
-        yield tuple(v for v in (wall.lower, wall.upper) if v is not None) + (wall.spring,)
+    for restraint in protocol.flat_bottom:
+        yield tuple(v for v in (restraint.lower, restraint.upper) if v is not None) + (restraint.spring,)
     for intervals in protocol.basins.values():
         for interval in intervals.values():
             yield interval
@@ -94,11 +94,11 @@ def check_loads_or_explains(text):
 
 # -- building blocks ---------------------------------------------------------------------
 KNOWN_KEYS = ["protocol", "title", "system", "seed", "temperature", "timestep", "friction", "pressure",
-              "platform", "coordinates", "walls", "umbrella", "temperatures", "exchange", "run", "basins",
+              "platform", "coordinates", "flat_bottom", "umbrella", "temperatures", "exchange", "run", "basins",
               "analysis", "position", "axis", "distance", "angle", "dihedral", "combination", "centre",
-              "centres", "spring", "from", "to", "count", "lower", "upper", "coordinate", "lowest",
-              "highest", "scheme", "attempts", "name", "threads", "deterministic", "cycle",
-              "equilibration", "production", "frame_interval", "checkpoint_interval", "minimise",
+              "centres", "spring", "from", "to", "count", "coordinate", "lowest",
+              "highest", "pairs", "attempts", "name", "threads", "deterministic", "cycle",
+              "equilibration", "production", "frame_every", "checkpoint_every", "minimise",
               "retries", "workers", "bins", "energy_unit", "memory", "x", "phi", "psi", "left", "right", "model"]
 UNITS = ["K", "fs", "ps", "ns", "nm", "Å", "angstrom", "deg", "rad", "kJ/mol", "kcal/mol", "kT",
          "kJ/mol/nm**2", "kJ/mol/rad**2", "kJ/mol/deg**2", "kcal/mol/Å**2", "1/ps", "/ps", "ps**-1",
@@ -361,7 +361,7 @@ def test_seeds_are_valid_and_survive_a_dump(index):
     assert isinstance(first, Protocol), first
     again = check_loads_or_explains(yaml.safe_dump(SEED_TREES[index]))
     assert isinstance(again, Protocol), again
-    for field in ("temperature", "timestep", "temperatures", "umbrella", "walls", "basins", "run", "analysis"):
+    for field in ("temperature", "timestep", "temperatures", "umbrella", "flat_bottom", "basins", "run", "analysis"):
         assert getattr(again, field) == getattr(first, field), field
 
 
@@ -452,8 +452,8 @@ def test_former_crashes_are_one_clear_line(text, message):
 def test_merge_keys_and_aliases_read_as_written_out():
     # source: YAML 1.1 merge key type, yaml.org/type/merge.html (from memory): keys written
     # in a mapping override the merged ones; an alias stands for its anchored node (YAML spec)
-    plain = _dw("frame_interval: 1 ps", "frame_interval: 0.1 ps")
-    merged = _dw("cycle: 0.1 ps", "cycle: &c 0.1 ps").replace("frame_interval: 1 ps", "frame_interval: *c")
+    plain = _dw("frame_every: 1 ps", "frame_every: 0.1 ps")
+    merged = _dw("cycle: 0.1 ps", "cycle: &c 0.1 ps").replace("frame_every: 1 ps", "frame_every: *c")
     merged = merged.replace("left: {x: [-1 nm, 0 nm]}", "left: &b {x: [-1 nm, 0 nm]}")
     merged = merged.replace("right: {x: [0 nm, 1 nm]}", "right: {<<: *b, x: [0 nm, 1 nm]}")
     expected, got = check_loads_or_explains(plain), check_loads_or_explains(merged)

@@ -29,13 +29,13 @@ platform: Reference
 coordinates:
   phi: {dihedral: ["resid 0 and name C", "resid 1 and name N", "resid 1 and name CA", "resid 1 and name C"]}
 temperatures: [300 K, 360 K]
-exchange: {scheme: neighbours}
+exchange: {pairs: adjacent}
 run:
   cycle: 0.1 ps
   equilibration: 2 ps
   production: 40 ps
-  frame_interval: 1 ps
-  checkpoint_interval: 0.5 ps
+  frame_every: 1 ps
+  checkpoint_every: 0.5 ps
 basins:
   C7eq: {phi: [-180 deg, 0 deg]}
   C7ax: {phi: [0 deg, 180 deg]}
@@ -173,7 +173,7 @@ timestep: 20 fs
 platform: Reference
 coordinates:
   x: {position: 0, axis: x}
-run: {cycle: 0.2 ps, production: 20 ps, minimise: false, checkpoint_interval: 1 ps}
+run: {cycle: 0.2 ps, production: 20 ps, minimise: false, checkpoint_every: 1 ps}
 """
 
 

@@ -44,7 +44,7 @@ timestep: 5 fs
 friction: 10/ps
 platform: Reference
 temperatures: [300 K, 330 K]
-exchange: {scheme: neighbours, attempts: 2}   # two walkers: odd-parity passes hold no pair,
+exchange: {pairs: adjacent, attempts: 2}   # two walkers: odd-parity passes hold no pair,
 run:                                          # so this is one attempt per cycle
   cycle: 0.5 ps
   equilibration: 5 ps
@@ -68,7 +68,7 @@ coordinates:
   x: {position: 0, axis: x}
 umbrella:
   x: {centres: [0 nm, 0 nm], spring: [2500 kJ/mol/nm**2, 500 kJ/mol/nm**2]}
-exchange: {scheme: neighbours, attempts: 2}   # one attempt per cycle, as above
+exchange: {pairs: adjacent, attempts: 2}   # one attempt per cycle, as above
 run:
   cycle: 0.5 ps
   equilibration: 5 ps
@@ -89,7 +89,7 @@ timestep: 5 fs
 friction: 10/ps
 platform: Reference
 temperatures: {lowest: 300 K, highest: 600 K, count: 4}
-exchange: {scheme: all_pairs}
+exchange: {pairs: any}
 run:
   cycle: 0.5 ps
   equilibration: 5 ps
@@ -294,7 +294,7 @@ def test_mbar_free_energies_across_temperatures(four_temperatures, two_temperatu
         assert np.all(np.abs(z) < 4) and np.allclose(analysis.f_k, exact, atol=0.1), (analysis.f_k, exact)
 
 
-def test_all_pairs_swaps_follow_incomplete_beta_law(four_temperatures):
+def test_any_pairs_swaps_follow_incomplete_beta_law(four_temperatures):
     # source: Predescu et al. (2004) for every pair, R = T_j/T_i; all-pairs swaps keep the
     # joint distribution stationary, so each attempt sees canonical configurations (exact).
     data = read_ledger(four_temperatures)

@@ -97,7 +97,7 @@ run:
   cycle: CYCLE
   equilibration: EQUILIBRATION
   production: PRODUCTION
-  checkpoint_interval: 1 ns
+  checkpoint_every: 1 ns
 basins:
   left: {x: [-1 nm, 0 nm]}
   right: {x: [0 nm, 1 nm]}
@@ -225,7 +225,7 @@ run:
   cycle: 1 ps
   equilibration: 50 ps
   production: 400 ps
-  checkpoint_interval: 1 ns
+  checkpoint_every: 1 ns
 basins:
   A: {y: [0.15 nm, 10 nm]}
   B: {x: [0.04 nm, 10 nm], y: [-10 nm, 0.15 nm]}
@@ -320,7 +320,7 @@ run:
   cycle: 1 ps
   equilibration: 10 ps
   production: 10 ns
-  checkpoint_interval: 1 ns
+  checkpoint_every: 1 ns
 basins:
   left: {x: [-1 nm, 0 nm]}
   right: {x: [0 nm, 1 nm]}

@@ -26,8 +26,8 @@ platform: PLATFORM
 coordinates:
   x: {position: 0, axis: x}
 temperatures: {lowest: 300 K, highest: 900 K, count: 4}
-exchange: {scheme: neighbours}
-run: {cycle: 0.2 ps, equilibration: 2 ps, production: 10 ps, frame_interval: 2 ps}
+exchange: {pairs: adjacent}
+run: {cycle: 0.2 ps, equilibration: 2 ps, production: 10 ps, frame_every: 2 ps}
 """
 
 

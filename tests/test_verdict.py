@@ -57,3 +57,37 @@ def test_kish_effective_sample_size():
 def test_crossing_walkers_need_both_sides():
     inside_rt = np.array([[True, True, True], [True, False, True], [False, False, False]])
     assert count_crossing_walkers(inside_rt) == 1
+
+
+# -- forward and reverse cumulative estimates -------------------------------------------
+from boost.convergence import FRACTIONS, compute_cumulative  # noqa: E402
+from boost.exceptions import AnalysisError  # noqa: E402
+
+
+def _mean_estimate(x_n):
+    def estimate(columns):
+        if columns.size < 3:
+            raise AnalysisError("too few")
+        part = x_n[columns]
+        return {"mean": (part.mean(), part.std(ddof=1) / math.sqrt(part.size))}
+    return estimate
+
+
+def test_halves_partition_production_and_full_fractions_agree():
+    # exact: the first and last halves of 1,000 evenly spread samples are disjoint and
+    # together are all of them; a linear trend x = t puts their means at 0.25 and 0.75
+    n = 1000
+    position_n = np.arange(n) / n
+    cumulative = compute_cumulative(_mean_estimate(position_n), position_n, ["mean"])
+    first, _, second, _ = cumulative.halves("mean")
+    assert first == pytest.approx(np.mean(position_n[:500])) and second == pytest.approx(np.mean(position_n[500:]))
+    assert cumulative.forward[0, -1] == cumulative.reverse[0, -1] == pytest.approx(np.mean(position_n))
+    assert cumulative.forward[0, 0] == pytest.approx(np.mean(position_n[:100]))
+    assert cumulative.reverse[0, 0] == pytest.approx(np.mean(position_n[900:]))
+    assert len(cumulative.fractions) == len(FRACTIONS)
+
+
+def test_parts_too_small_to_estimate_are_gaps_not_errors():
+    position_n = np.array([0.05, 0.5, 0.55, 0.6, 0.95])
+    cumulative = compute_cumulative(_mean_estimate(np.arange(5.0)), position_n, ["mean"])
+    assert np.isnan(cumulative.forward[0, 0]) and np.isfinite(cumulative.forward[0, -1])

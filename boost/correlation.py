@@ -103,7 +103,7 @@ def _origin_inefficiencies(a_t, origin_j, stride):
     lags = min(n, max(stride, _MIN_LAGS))
     size = _fft_size(stride + lags)  # block plus reach: no lag wraps around
     prefix = np.concatenate([[0.0], np.cumsum(a_t)])
-    constant_j = _constant_tails(a_t)[origin_j]
+    constant_j = _constant_tails(a_t, origin_j)
     running_t = np.zeros(lags)
     g_j = np.empty(origin_j.size)
     for j in range(origin_j.size - 1, -1, -1):
@@ -154,11 +154,11 @@ def _truncated_sum(C_t, count):
     return max(g, 1.0), True
 
 
-def _constant_tails(a_t):
-    """Whether a[o:] is constant, for every origin o."""
-    high = np.maximum.accumulate(a_t[::-1])[::-1]
-    low = np.minimum.accumulate(a_t[::-1])[::-1]
-    return high == low
+def _constant_tails(a_t, origin_j):
+    """Whether a[o:] is constant, for every origin o in ``origin_j``."""
+    high_j = np.maximum.accumulate(np.maximum.reduceat(a_t, origin_j)[::-1])[::-1]
+    low_j = np.minimum.accumulate(np.minimum.reduceat(a_t, origin_j)[::-1])[::-1]
+    return high_j == low_j
 
 
 def _centred(series, shortest):

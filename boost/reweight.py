@@ -190,8 +190,9 @@ def subsample_indices(n_samples, g):
     -------
     indices : ndarray, shape (n_kept,), dtype int
     """
-    indices = np.unique(np.round(np.arange(0.0, n_samples, g)).astype(int))
-    return indices[indices < n_samples]
+    indices = np.round(np.arange(0.0, n_samples, g)).astype(int)
+    kept = (indices < n_samples) & np.concatenate([[True], np.diff(indices) > 0])  # sorted: drop repeats
+    return indices[kept]
 
 
 class Reweighting:

@@ -18,8 +18,8 @@ from .diagnostics import summarise_swaps, warn_poor_overlap
 from .exceptions import AnalysisError, BoostWarning, ConvergenceWarning
 from .protocol import parse_protocol
 from .spec import read_text
+from .correlation import compute_statistical_inefficiency
 from .reweight import Reweighting, decorrelate
-from pymbar import timeseries  # imported quietly by .reweight first
 from .store import PROTOCOL, read_ledger
 from .units import energy_in
 
@@ -204,7 +204,7 @@ def select_samples(data, protocol, folder, memory):
         # equilibration from the condition's own reduced potential (Chodera 2016); the
         # spacing from the slowest watched observable after it
         t0 = decorrelate(series[0]).t0
-        g = max([1.0] + [float(timeseries.statistical_inefficiency(s[t0:])) for s in series if np.ptp(s[t0:]) > 0])
+        g = max([1.0] + [compute_statistical_inefficiency(s[t0:]) for s in series if np.ptp(s[t0:]) > 0])
         keep = t0 + np.unique(np.floor(np.arange(0, production.size - t0, g) + 0.5).astype(int))
         keep = keep[keep < production.size]
         if keep.size < MIN_SAMPLES:

@@ -33,6 +33,7 @@ import numpy as np
 from scipy.sparse.csgraph import connected_components
 from scipy.special import logsumexp
 
+from boost.correlation import detect_equilibration
 from boost.exceptions import AnalysisError, ConvergenceWarning, PoorOverlapWarning
 
 
@@ -47,13 +48,12 @@ def _import_pymbar_quietly():
     pymbar_logger.setLevel(logging.ERROR)
     try:
         import pymbar
-        from pymbar import timeseries
     finally:
         pymbar_logger.setLevel(level)
-    return pymbar, timeseries
+    return pymbar
 
 
-pymbar, _timeseries = _import_pymbar_quietly()
+pymbar = _import_pymbar_quietly()
 
 #: Overlap matrix elements below this do not connect two conditions (common practice).
 OVERLAP_THRESHOLD = 0.03
@@ -137,17 +137,17 @@ def decorrelate(series, *, max_origins=100):
     """Discard equilibration and subsample a series to uncorrelated samples.
 
     The equilibration time t0 maximizes the number of effectively uncorrelated samples
-    (T - t0) / g(t0) [2]_ (pymbar.timeseries.detect_equilibration); the rest is
-    subsampled with stride g (pymbar.timeseries.subsample_correlated_data). A constant
-    series is treated as uncorrelated: t0 = 0, g = 1, every sample kept.
+    (T - t0) / g(t0) [2]_ (:func:`boost.correlation.detect_equilibration`, the estimator
+    of pymbar.timeseries.detect_equilibration in O(T log T)); the rest is subsampled at
+    the rounded multiples of g, as pymbar.timeseries.subsample_correlated_data does. A
+    constant series is treated as uncorrelated: t0 = 0, g = 1, every sample kept.
 
     Parameters
     ----------
     series : array_like, shape (T,)
         An observable recorded at equal intervals (e.g. a reduced potential).
     max_origins : int, optional
-        At most this many evenly spaced candidates for t0 are tried; detection costs
-        O(max_origins × T).
+        About this many evenly spaced candidates for t0 are tried.
 
     Returns
     -------
@@ -164,10 +164,7 @@ def decorrelate(series, *, max_origins=100):
     n_total = a_t.size
     t0, g = 0, 1.0
     if n_total >= 3 and np.ptp(a_t) > 0.0:
-        stride = max(1, n_total // max_origins)
-        t0, g, _ = _timeseries.detect_equilibration(a_t, fast=False, nskip=stride)
-        t0, g = int(t0), float(g)
-    kept = _timeseries.subsample_correlated_data(a_t[t0:], g=g)
+        t0, g = detect_equilibration(a_t, n_origins=max_origins)
     n_effective = (n_total - t0) / g
     if n_effective < MIN_EFFECTIVE_SAMPLES:
         warnings.warn(
@@ -176,8 +173,26 @@ def decorrelate(series, *, max_origins=100):
             ConvergenceWarning,
             stacklevel=2,
         )
-    indices = t0 + np.asarray(kept, dtype=int)
+    indices = t0 + subsample_indices(n_total - t0, g)
     return Decorrelation(t0=t0, g=g, n_effective=n_effective, indices=indices)
+
+
+def subsample_indices(n_samples, g):
+    """Indices round(i g), i = 0, 1, …, below ``n_samples``: about n_samples / g of them.
+
+    Parameters
+    ----------
+    n_samples : int
+    g : float, in samples
+        Statistical inefficiency, at least 1.
+
+    Returns
+    -------
+    indices : ndarray, shape (n_kept,), dtype int
+    """
+    indices = np.round(np.arange(0.0, n_samples, g)).astype(int)
+    kept = (indices < n_samples) & np.concatenate([[True], np.diff(indices) > 0])  # sorted: drop repeats
+    return indices[kept]
 
 
 class Reweighting:

@@ -382,7 +382,15 @@ def _bootstrap_errors(mbar, u_n, samples, data, protocol, folder, profiles, basi
     production = np.flatnonzero(data.production_t)
     start = int(min(samples["t0_k"]))          # no condition keeps a sample before this
     cycles = production[start:]
-    resample.check_cycles(cycles.size)
+    if settings.method == "auto" and cycles.size < resample.MIN_BLOCKS:
+        warnings.warn(f"only {cycles.size} production cycles to resample, fewer than the {resample.MIN_BLOCKS} a "
+                      "block bootstrap needs; the error bars are MBAR's asymptotic ones, which are too small for "
+                      "an exchange run. Run longer.", ConvergenceWarning, stacklevel=3)
+        return mbar.df_k, profiles, basins, Uncertainty("asymptotic")
+    try:
+        resample.check_cycles(cycles.size)
+    except AnalysisError as err:
+        raise AnalysisError(f"{folder}: {err}") from None
     walker_g = max(_walker_inefficiency(data, protocol, cycles), float(max(samples["g_k"])))
     block = settings.block_cycles
     if block and cycles.size // block < resample.MIN_BLOCKS:

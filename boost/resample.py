@@ -87,7 +87,7 @@ def choose_block_length(g, n_cycles, *, multiplier=BLOCK_MULTIPLIER, min_blocks=
 def check_cycles(n_cycles, min_blocks=MIN_BLOCKS):
     if n_cycles < min_blocks:
         raise AnalysisError(f"a block bootstrap needs at least {min_blocks} production cycles to resample; "
-                            f"this run has {n_cycles}. Run longer, or set analysis.uncertainty.method: asymptotic.")
+                            f"{n_cycles} are analysed. Run longer, or set analysis.uncertainty.method: asymptotic.")
 
 
 def draw_cycle_counts(n_cycles, block, n_resamples, rng):

@@ -17,7 +17,7 @@ from scipy.special import expit
 from .conditions import compute_reduced_potentials, compute_unbiased_reduced_potential
 from .diagnostics import summarise_swaps, warn_poor_overlap
 from .exceptions import AnalysisError, BoostWarning, ConvergenceWarning
-from .protocol import parse_protocol
+from .protocol import UNCERTAINTY_METHODS, parse_protocol
 from .spec import read_text
 from . import resample
 from .reweight import Reweighting, bin_samples, decorrelate
@@ -116,10 +116,16 @@ def load_run(folder):
     return protocol, data
 
 
-def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None):
+def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, uncertainty=None):
     """Analyse a run folder; see :class:`Analysis`. ``temperature`` in K; ``memory`` in
-    bytes overrides the protocol's analysis.memory."""
+    bytes overrides the protocol's analysis.memory; ``uncertainty`` ('auto', 'asymptotic'
+    or 'bootstrap') its analysis.uncertainty.method."""
     protocol, data = load_run(folder)
+    if uncertainty is not None:
+        if uncertainty not in UNCERTAINTY_METHODS:
+            raise AnalysisError(f"uncertainty must be one of {', '.join(UNCERTAINTY_METHODS)}; got {uncertainty!r}")
+        settings = replace(protocol.analysis.uncertainty, method=uncertainty)
+        protocol = replace(protocol, analysis=replace(protocol.analysis, uncertainty=settings))
     temperature = protocol.temperature if temperature is None else temperature
     ladder = protocol.temperatures
     if not min(ladder) - 1e-9 <= temperature <= max(ladder) + 1e-9:
@@ -363,7 +369,9 @@ def population_interval(p, dp):
     with np.errstate(divide="ignore", invalid="ignore"):
         logit = np.log(p) - np.log1p(-p)
         half = Z95 * dp / p / (1.0 - p)
-    return expit(logit - half), expit(logit + half)
+        low, high = expit(logit - half), expit(logit + half)
+    certain = (dp == 0) | (p <= 0) | (p >= 1)     # e.g. one basin holding every sample
+    return np.where(certain, p, low), np.where(certain, p, high)
 
 
 # -- bootstrap error bars for exchange runs ----------------------------------------------

@@ -155,6 +155,7 @@ def test_asymptotic_population_interval_stays_inside_zero_one():
     p = np.array([0.95, 0.5, 0.01])
     low, high = population_interval(p, [1.07, 0.01, 0.02])     # 1.07 on 0.95: seen with few samples
     assert np.all((0 <= low) & (low < p) & (p < high) & (high <= 1)), (low, high)
+    assert population_interval([1.0], [0.0]) == ([1.0], [1.0])   # a basin holding everything
     # small errors: the logit interval becomes p ± 1.96 dp (delta method, common practice)
     assert low[1] == pytest.approx(0.5 - 1.96 * 0.01, abs=1e-4) and high[1] == pytest.approx(0.5 + 1.96 * 0.01, abs=1e-4)
 

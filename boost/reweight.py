@@ -447,10 +447,18 @@ def _bin_covariance(a_nk, bin_n, w_n, p_b, lowest):
 def _solve(u_kn, N_k, initial_f_k):
     """pymbar's MBAR solution, checked: AnalysisError when its weights are not normalized."""
     protocol = None if initial_f_k is None else _WARM_START_SOLVER
+    # a warm start's hand-over from hybr to adaptive is routine, not news: pymbar's log
+    # is muted for it (the normalization check below catches real failures)
+    pymbar_logger = logging.getLogger("pymbar")
+    level = pymbar_logger.level
+    if initial_f_k is not None:
+        pymbar_logger.setLevel(logging.ERROR)
     try:
         mbar = pymbar.MBAR(u_kn, N_k, initial_f_k=initial_f_k, solver_protocol=protocol)
     except pymbar.utils.ParameterError as err:
         raise AnalysisError(f"MBAR could not be solved: {err}") from err
+    finally:
+        pymbar_logger.setLevel(level)
     with np.errstate(divide="ignore", invalid="ignore"):
         residual = np.max(np.abs(np.log(mbar.weights().sum(axis=0))))
     if not residual <= _NORMALIZATION_TOLERANCE:   # NaN fails too

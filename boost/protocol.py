@@ -130,6 +130,16 @@ class Bins:
 
 
 MIN_ANALYSIS_MEMORY = 512 * 2**20
+UNCERTAINTY_METHODS = ("auto", "asymptotic", "bootstrap")
+#: Bounds on analysis.uncertainty.resamples: fewer than 20 make no 95 % interval.
+MIN_RESAMPLES, MAX_RESAMPLES = 20, 100_000
+
+
+@dataclass(frozen=True)
+class UncertaintySettings:
+    method: str = "auto"     # 'auto' (bootstrap with exchange, else asymptotic), 'asymptotic', 'bootstrap'
+    resamples: int = 200     # bootstrap replicates
+    block_cycles: int = 0    # bootstrap block length in cycles; 0: chosen from the data
 
 
 @dataclass(frozen=True)
@@ -137,6 +147,7 @@ class AnalysisSettings:
     bins: tuple            # tuple[Bins, ...]; empty: chosen from the data
     energy_unit: str       # 'kJ/mol', 'kcal/mol' or 'kT'
     memory: float = 2**30  # bytes the analysis may use (MBAR's samples are thinned to fit)
+    uncertainty: UncertaintySettings = UncertaintySettings()
 
 
 @dataclass(frozen=True)
@@ -206,6 +217,7 @@ def parse_protocol(text, path):
     if exchange is not None and len(temperatures) == 1 and math.prod(len(a.centres) for a in umbrella) < 2:
         root.get("exchange").fail("used with a ladder: a 'temperatures' list or 'umbrella' windows "
                                   "along a coordinate, which this protocol lacks")
+    run = _read_run(root.get("run"), timestep)
     return Protocol(
         path=path, text=text, sha256=hashlib.sha256(text.encode()).hexdigest(),
         title=_read_title(root), seed=root.get("seed").integer(minimum=0),
@@ -215,9 +227,9 @@ def parse_protocol(text, path):
         flat_bottom=_read_flat_bottom(root.get("flat_bottom", []), coordinates),
         umbrella=umbrella, temperatures=temperatures, exchange=exchange,
         platform=_read_platform(root.get("platform", {})),
-        run=_read_run(root.get("run"), timestep),
+        run=run,
         basins=_read_basins(root.get("basins", {}), coordinates),
-        analysis=_read_analysis(root.get("analysis", {}), coordinates),
+        analysis=_read_analysis(root.get("analysis", {}), coordinates, run, timestep),
     )
 
 
@@ -494,8 +506,8 @@ def _boxes_overlap(a, b, coordinates):
     return True
 
 
-def _read_analysis(node, coordinates):
-    node.mapping(allowed=("bins", "energy_unit", "memory"))
+def _read_analysis(node, coordinates, run, timestep):
+    node.mapping(allowed=("bins", "energy_unit", "memory", "uncertainty"))
     bins = []
     for name, entry in node.get("bins", {}).items():
         coordinate = _coordinate(Node(name, node.file, entry.path), coordinates)
@@ -513,7 +525,25 @@ def _read_analysis(node, coordinates):
     if memory < MIN_ANALYSIS_MEMORY:
         node.get("memory").fail(f"at least {MIN_ANALYSIS_MEMORY // 2**20} MiB (the analysis needs that much "
                                 "before any sample)")
-    return AnalysisSettings(bins=tuple(bins), energy_unit=unit, memory=memory)
+    return AnalysisSettings(bins=tuple(bins), energy_unit=unit, memory=memory,
+                            uncertainty=_read_uncertainty(node.get("uncertainty", {}), run, timestep))
+
+
+def _read_uncertainty(node, run, timestep):
+    node.mapping(allowed=("method", "resamples", "block"))
+    method = node.get("method", "auto").text(choices=UNCERTAINTY_METHODS)
+    resamples = node.get("resamples", 200).integer(minimum=MIN_RESAMPLES, maximum=MAX_RESAMPLES)
+    block = node.get("block", "auto")
+    block_cycles = 0
+    if block.value != "auto":
+        cycle_ps = run.steps_per_cycle * timestep
+        if not isinstance(block.value, str):
+            block.fail(f"'auto' or a time such as '{20 * cycle_ps:g} ps'")
+        block_cycles = _cycles(block, run.steps_per_cycle, timestep, "a bootstrap block")
+        if not 1 <= block_cycles <= run.production_cycles:
+            block.fail(f"between one cycle ({cycle_ps:g} ps) and the production "
+                       f"({run.production_cycles * cycle_ps:g} ps)")
+    return UncertaintySettings(method=method, resamples=resamples, block_cycles=block_cycles)
 
 
 # -- atoms (needs the built topology) ---------------------------------------------------

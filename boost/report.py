@@ -28,13 +28,17 @@ def format_summary(analysis):
     unit = analysis.energy_unit
     lines = [f"analysis of {analysis.folder} at {analysis.temperature:.2f} K "
              f"({int(analysis.samples_k.sum())} uncorrelated samples from {len(analysis.samples_k)} "
-             f"condition{'s' if len(analysis.samples_k) != 1 else ''})"]
+             f"condition{'s' if len(analysis.samples_k) != 1 else ''})",
+             f"error bars: {_method(analysis)}"]
     basins = analysis.basins
     if basins is not None:
-        lines.append(f"{'basin':12s} {'population':>11s} {'± error':>9s} {'G − G(' + basins.names[0] + ') (' + unit + ')':>24s} {'± error':>9s}")
+        lines.append(f"{'basin':12s} {'population':>11s} {'± error':>9s} {'95% low':>8s} {'95% high':>8s} "
+                     f"{'G − G(' + basins.names[0] + ') (' + unit + ')':>24s} {'± error':>9s}")
         for i, name in enumerate(basins.names):
             lines.append(f"{name:12s} {_fmt(basins.populations[i], 4):>11s} {_fmt(basins.d_populations[i], 4):>9s} "
+                         f"{_fmt(basins.populations_low[i], 4):>8s} {_fmt(basins.populations_high[i], 4):>8s} "
                          f"{_fmt(basins.Delta_g[0, i]):>24s} {_fmt(basins.d_Delta_g[0, i]):>9s}")
+        lines += _bound_notes(basins)
     for profile in analysis.profiles:
         if len(profile.coordinates) == 1:
             finite = np.isfinite(profile.f)
@@ -47,6 +51,23 @@ def format_summary(analysis):
         trips = analysis.swaps.round_trips_r
         lines.append(f"round trips per walker: {', '.join(str(int(t)) for t in trips)}")
     return "\n".join(lines)
+
+
+def _method(analysis):
+    """The error method in words, with failed resamples for a bootstrap."""
+    u = analysis.uncertainty
+    return u.label if u.method == "asymptotic" else f"{u.label}, {u.failed} failed"
+
+
+def _bound_notes(basins):
+    """A note for each population whose ± error reaches past 0 or 1, where the bar means nothing."""
+    notes = []
+    for name, p, dp in zip(basins.names, basins.populations, basins.d_populations):
+        if np.isfinite(dp) and (p - dp < 0.0 or p + dp > 1.0):
+            side = "below 0" if p - dp < 0.0 else "above 1"
+            notes.append(f"note: the ± error of {name} reaches {side}, so it is no error bar there; "
+                         "its 95% interval (inside 0 to 1) is the range to quote.")
+    return notes
 
 
 def write_report(analysis, folder=None):
@@ -73,25 +94,31 @@ def _write_rows(path, header, rows):
 
 
 def _write_conditions(analysis, out):
+    method = _method(analysis)
     rows = [(k, analysis.condition_labels[k], int(analysis.samples_k[k]), int(analysis.thinning_k[k]),
-             int(analysis.t0_k[k]), _fmt(analysis.g_k[k], 2), _fmt(analysis.f_k[k], 4), _fmt(analysis.df_k[k], 4))
+             int(analysis.t0_k[k]), _fmt(analysis.g_k[k], 2), _fmt(analysis.f_k[k], 4), _fmt(analysis.df_k[k], 4),
+             method)
             for k in range(len(analysis.samples_k))]
     _write_rows(out / "conditions.csv", ["condition", "label", "samples used", "1 in (memory thinning)",
                                          "equilibration discarded (cycles)", "statistical inefficiency (cycles)",
-                                         "f (kT)", "f error (kT)"], rows)
+                                         "f (kT)", "f error (kT)", "error method"], rows)
     _write_rows(out / "overlap.csv", ["condition"] + [str(k) for k in range(len(analysis.overlap))],
                 [[k] + [f"{x:.4f}" for x in row] for k, row in enumerate(analysis.overlap)])
 
 
 def _write_basins(analysis, out):
-    basins, unit = analysis.basins, analysis.energy_unit
-    _write_rows(out / "basins.csv", ["basin", "population", "population error"],
-                [(n, _fmt(p, 5), _fmt(d, 5)) for n, p, d in zip(basins.names, basins.populations,
-                                                                   basins.d_populations)])
-    rows = [(a, b, _fmt(basins.Delta_g[i, j], 4), _fmt(basins.d_Delta_g[i, j], 4))
+    basins, unit, method = analysis.basins, analysis.energy_unit, _method(analysis)
+    _write_rows(out / "basins.csv", ["basin", "population", "population error", "population 95% low",
+                                     "population 95% high", "error method"],
+                [(n, _fmt(basins.populations[i], 5), _fmt(basins.d_populations[i], 5),
+                  _fmt(basins.populations_low[i], 5), _fmt(basins.populations_high[i], 5), method)
+                 for i, n in enumerate(basins.names)])
+    rows = [(a, b, _fmt(basins.Delta_g[i, j], 4), _fmt(basins.d_Delta_g[i, j], 4),
+             _fmt(basins.Delta_g_low[i, j], 4), _fmt(basins.Delta_g_high[i, j], 4), method)
             for i, a in enumerate(basins.names) for j, b in enumerate(basins.names) if i != j]
     _write_rows(out / "free-energy-differences.csv",
-                ["from basin", "to basin", f"ΔG ({unit})", f"ΔG error ({unit})"], rows)
+                ["from basin", "to basin", f"ΔG ({unit})", f"ΔG error ({unit})", f"ΔG 95% low ({unit})",
+                 f"ΔG 95% high ({unit})", "error method"], rows)
 
 
 def _profile_name(profile):
@@ -99,14 +126,16 @@ def _profile_name(profile):
 
 
 def _write_profile(analysis, profile, out):
-    unit = analysis.energy_unit
+    unit, method = analysis.energy_unit, _method(analysis)
     labels = [_axis_label(n, _is_angle(analysis, n)) for n in profile.coordinates]
     grids = np.meshgrid(*profile.centres, indexing="ij")
     rows = [[_fmt(g[index], 5) for g in grids] + [_fmt(profile.f[index], 4), _fmt(profile.df[index], 4),
-                                                   int(profile.counts[index])]
+                                                   _fmt(profile.f_low[index], 4), _fmt(profile.f_high[index], 4),
+                                                   int(profile.counts[index]), method]
             for index in np.ndindex(profile.f.shape)]
-    _write_rows(out / f"{_profile_name(profile)}.csv", labels + [f"PMF ({unit})", f"PMF error ({unit})", "samples"],
-                rows)
+    _write_rows(out / f"{_profile_name(profile)}.csv",
+                labels + [f"PMF ({unit})", f"PMF error ({unit})", f"PMF 95% low ({unit})", f"PMF 95% high ({unit})",
+                          "samples", "error method"], rows)
 
 
 def _write_swaps(analysis, out):
@@ -122,20 +151,40 @@ def _clean(array):
     return [None if not np.isfinite(x) else float(x) for x in np.ravel(array)]
 
 
+def _number(value):
+    return float(value) if np.isfinite(value) else None
+
+
+def _uncertainty_summary(analysis):
+    u = analysis.uncertainty
+    result = {"method": _method(analysis), "kind": u.method}
+    if u.method == "bootstrap":
+        result.update({"resamples": u.resamples, "failed resamples": u.failed, "block (cycles)": u.block_cycles,
+                       "block (ps)": _number(u.block_cycles * u.cycle_ps),
+                       "block chosen from the walkers": u.block_chosen,
+                       "largest statistical inefficiency along a walker (cycles)": _number(u.walker_g)})
+    return result
+
+
 def _summary(analysis):
     result = {"temperature (K)": analysis.temperature, "energy unit": analysis.energy_unit,
-              "cycles in ledger": analysis.n_cycles,
+              "cycles in ledger": analysis.n_cycles, "error bars": _uncertainty_summary(analysis),
               "conditions": [{"label": analysis.condition_labels[k], "samples used": int(analysis.samples_k[k]),
                               "1 in (memory thinning)": int(analysis.thinning_k[k]),
-                              "f (kT)": float(analysis.f_k[k]), "f error (kT)": float(analysis.df_k[k])}
+                              "f (kT)": float(analysis.f_k[k]), "f error (kT)": _number(analysis.df_k[k])}
                              for k in range(len(analysis.samples_k))]}
     if analysis.basins is not None:
-        b = analysis.basins
-        result["basins"] = {name: {"population": float(b.populations[i]), "population error": float(b.d_populations[i])}
+        b, unit = analysis.basins, analysis.energy_unit
+        result["basins"] = {name: {"population": float(b.populations[i]),
+                                   "population error": _number(b.d_populations[i]),
+                                   "population 95% low": _number(b.populations_low[i]),
+                                   "population 95% high": _number(b.populations_high[i])}
                             for i, name in enumerate(b.names)}
         result["free-energy differences"] = [
-            {"from": a, "to": c, f"ΔG ({analysis.energy_unit})": float(b.Delta_g[i, j]),
-             f"ΔG error ({analysis.energy_unit})": float(b.d_Delta_g[i, j])}
+            {"from": a, "to": c, f"ΔG ({unit})": float(b.Delta_g[i, j]),
+             f"ΔG error ({unit})": _number(b.d_Delta_g[i, j]),
+             f"ΔG 95% low ({unit})": _number(b.Delta_g_low[i, j]),
+             f"ΔG 95% high ({unit})": _number(b.Delta_g_high[i, j])}
             for i, a in enumerate(b.names) for j, c in enumerate(b.names) if i < j]
     result["profiles"] = [{"coordinates": list(p.coordinates), "file": _profile_name(p) + ".csv"}
                           for p in analysis.profiles]

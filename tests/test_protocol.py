@@ -132,6 +132,21 @@ BAD_EXTRA = [
     ("analysis: {energy_unit: eV}\n", r"analysis\.energy_unit must be one of"),
     ("analysis: {memory: 100 MiB}\n", r"analysis\.memory must be at least 512 MiB"),
     ("analysis: {memory: 2 nm}\n", r"analysis\.memory must be an amount of memory"),
+    ("analysis: {uncertainty: bootstrap}\n", r"analysis\.uncertainty must be a mapping"),
+    ("analysis: {uncertainty: {method: jackknife}}\n",
+     r"analysis\.uncertainty\.method must be one of 'auto', 'asymptotic', 'bootstrap'"),
+    ("analysis: {uncertainty: {resamples: 5}}\n",
+     r"analysis\.uncertainty\.resamples must be a whole number of at least 20 and at most 100000"),
+    ("analysis: {uncertainty: {resamples: 200.5}}\n", r"analysis\.uncertainty\.resamples must be a whole number"),
+    ("analysis: {uncertainty: {block: 0.15 ps}}\n",
+     r"analysis\.uncertainty\.block must be a whole number of cycles \(0\.1 ps each\) for a bootstrap block"),
+    ("analysis: {uncertainty: {block: 20}}\n", r"analysis\.uncertainty\.block must be 'auto' or a time such as '2 ps'"),
+    ("analysis: {uncertainty: {block: 20 K}}\n", r"analysis\.uncertainty\.block must be a time"),
+    ("analysis: {uncertainty: {block: 0 ps}}\n",
+     r"analysis\.uncertainty\.block must be between one cycle \(0\.1 ps\) and the production \(5 ps\)"),
+    ("analysis: {uncertainty: {block: 6 ps}}\n", r"analysis\.uncertainty\.block must be between one cycle"),
+    ("analysis: {uncertainty: {blocks: auto}}\n",
+     r"analysis\.uncertainty\.blocks is not a known key\. Did you mean 'block'\?"),
     ("umbrella:\n  d: {centres: [-0.1 nm, 0.2 nm], spring: 1 kJ/mol/nm**2}\ncoordinates:\n  x: {position: 0, axis: x}\n",
      r"duplicate key"),
 ]
@@ -169,6 +184,15 @@ def test_disjoint_wrapped_basins_are_fine(write_protocol, double_well_text):
 def test_bad_sampling_input(write_protocol, double_well_text, extra, message):
     with pytest.raises(ProtocolError, match=message):
         load_protocol(write_protocol(double_well_text + extra))
+
+
+def test_uncertainty_settings_are_read(write_protocol, double_well_text):
+    protocol = load_protocol(write_protocol(double_well_text))
+    assert (protocol.analysis.uncertainty.method, protocol.analysis.uncertainty.resamples,
+            protocol.analysis.uncertainty.block_cycles) == ("auto", 200, 0)
+    text = double_well_text + "analysis: {uncertainty: {method: bootstrap, resamples: 50, block: 1.2 ps}}\n"
+    settings = load_protocol(write_protocol(text)).analysis.uncertainty
+    assert (settings.method, settings.resamples, settings.block_cycles) == ("bootstrap", 50, 12)  # 0.1 ps cycles
 
 
 def test_missing_file_is_input_error(tmp_path):

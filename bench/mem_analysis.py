@@ -82,7 +82,7 @@ print("RESULT " + json.dumps({{"seconds": seconds, "vmhwm_kib": int(hwm),
 STAGES = r"""
 import sys, time, tracemalloc, warnings
 sys.path.insert(0, {repo!r})
-import boost.analysis as analysis, boost.reweight as reweight, boost.store as store
+import boost.analysis as analysis, boost.analysis.samples as samples, boost.reweight as reweight, boost.store as store
 tracemalloc.start()
 rows = []
 def watch(module, name, label):
@@ -96,12 +96,12 @@ def watch(module, name, label):
             now, peak = tracemalloc.get_traced_memory()
             rows.append((label, before, peak, now))
     setattr(module, name, wrapped)
-watch(analysis, "read_ledger", "read_ledger (store)")
+watch(samples, "read_ledger", "read_ledger (store)")
 watch(analysis, "select_samples", "select_samples (decorrelation, u_kn)")
 watch(analysis, "Reweighting", "Reweighting: MBAR solve, errors, overlap")
 watch(reweight.Reweighting, "compute_pmf", "Reweighting.compute_pmf")
 watch(reweight.Reweighting, "compute_basins", "Reweighting.compute_basins")
-watch(analysis, "_window_values", "_window_values")
+watch(analysis, "window_values", "window_values")
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")
     analysis.analyse_run({folder!r})

@@ -204,11 +204,11 @@ def window_values(text, n_cycles, rng):
     return x_rt, potential_rt
 
 
-STAGES = [("boost.analysis", "read_ledger", "read ledger"),
+STAGES = [("boost.analysis.samples", "read_ledger", "read ledger"),
           ("boost.analysis", "select_samples", "decorrelate, subsample, u_kn"),
           ("boost.analysis", "Reweighting", "MBAR solve"),
-          ("boost.analysis", "_profiles", "PMFs"),
-          ("boost.analysis", "_basins", "basins"),
+          ("boost.analysis", "compute_profiles", "PMFs"),
+          ("boost.analysis", "compute_basin_results", "basins"),
           ("boost.report", "write_report", "report (tables, plots)")]
 
 

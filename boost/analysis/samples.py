@@ -1,0 +1,151 @@
+"""From a run folder to the samples MBAR uses: production cycles, equilibration removed,
+subsampled by statistical inefficiency, thinned to fit analysis.memory."""
+
+import math
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+from ..conditions import compute_reduced_potentials
+from ..correlation import compute_statistical_inefficiency
+from ..exceptions import AnalysisError, BoostWarning
+from ..protocol import parse_protocol
+from ..reweight import decorrelate
+from ..spec import read_text
+from ..store import PROTOCOL, read_ledger
+
+#: Fewest samples per condition (after subsampling) the analysis accepts.
+MIN_SAMPLES = 5
+
+
+def load_run(folder):
+    """The protocol copy and ledger of a run folder."""
+    data = read_ledger(folder, reduced=False)
+    path = Path(folder) / PROTOCOL
+    protocol = parse_protocol(read_text(path, "protocol copy"), path)
+    return protocol, data
+
+
+def window_values(data, protocol):
+    columns = [data.coordinate_names.index(a.coordinate) for a in protocol.umbrella]
+    if not columns:
+        return ()
+    angular = [data.metadata["units"][a.coordinate] == "rad" for a in protocol.umbrella]
+    production = data.production_t
+    out = []
+    for k in range(len(data.conditions)):
+        held = (data.condition_rt == k) & production[None, :]
+        values = data.values_rtc[held][:, columns]
+        out.append(np.where(angular, np.degrees(values), values))
+    return tuple(out)
+
+
+def condition_labels(data, protocol):
+    labels = []
+    for condition in data.conditions:
+        parts = [f"{condition.temperature:.1f} K"] if len(protocol.temperatures) > 1 else []
+        for axis, centre in zip(protocol.umbrella, condition.centres):
+            unit = data.metadata["units"][axis.coordinate]
+            shown = f"{math.degrees(centre):.1f} deg" if unit == "rad" else f"{centre:.4g} nm"
+            parts.append(f"{axis.coordinate} = {shown}")
+        labels.append(f"condition {condition.index} ({', '.join(parts) or 'unbiased'})")
+    return tuple(labels)
+
+
+def gather(array_rt, picks):
+    return np.concatenate([array_rt[walkers, cycles] for walkers, cycles in picks])
+
+
+def _decorrelation_series(data, k, walkers, cycles, protocol):
+    """Observables whose correlation time bounds the sample spacing in condition k."""
+    series = [compute_sample_reduced_potentials(data, protocol, [data.conditions[k]], walkers, cycles)[0]]
+    watched = {a.coordinate for a in protocol.umbrella} | {c for b in protocol.basins.values() for c in b}
+    for c, name in enumerate(data.coordinate_names):
+        if name in watched:
+            values = data.values_rtc[walkers, cycles, c]
+            series += [np.cos(values), np.sin(values)] if data.metadata["periodic"][c] else [values]
+    return series
+
+
+def compute_sample_reduced_potentials(data, protocol, conditions, walkers, cycles):
+    """u_kn for the samples (walkers[n], cycles[n]) in ``conditions``, from energies and values.
+
+    The same formula the run used (boost.conditions), so it equals the ledger's stored
+    reduced potentials; computing only the kept samples saves memory.
+    """
+    umbrella = data.metadata["umbrella"]
+    columns = [data.coordinate_names.index(name) for name in umbrella]
+    periodic = [data.metadata["periodic"][c] for c in columns]
+    values = data.values_rtc[walkers, cycles][:, columns]
+    return compute_reduced_potentials(conditions, data.potential_rt[walkers, cycles], values, periodic,
+                                      volume_r=data.volume_rt[walkers, cycles], pressure=protocol.pressure)
+
+
+#: pymbar 4.0.3 holds about this many arrays of conditions x samples float64 at its peak
+#: (solve, uncertainties, overlap), measured with bench/mem_analysis.py.
+MBAR_COPIES = 12
+#: Share of analysis.memory given to those arrays; the rest is Python, the ledger's
+#: columns and the tables (about 250 MiB measured for 24 conditions x 10^5 cycles).
+MBAR_SHARE = 0.6
+
+
+def thinning_stride(n_samples, n_conditions, memory):
+    """Take every stride-th sample of each condition so MBAR fits in ``memory`` bytes."""
+    fits = int(memory * MBAR_SHARE / (MBAR_COPIES * 8 * n_conditions))
+    return max(1, math.ceil(n_samples / max(fits, 1)))
+
+
+def select_samples(data, protocol, folder, memory):
+    """Production samples per condition, equilibration removed, subsampled; u_kn and N_k."""
+    production = np.flatnonzero(data.production_t)
+    if production.size == 0:
+        raise AnalysisError(f"{folder}: holds no production cycle yet.")
+    picks, t0_k, g_k = [], [], []
+    for k in range(len(data.conditions)):
+        walker_t = np.argmax(data.condition_rt[:, production] == k, axis=0)
+        series = _decorrelation_series(data, k, walker_t, production, protocol)
+        # equilibration from the condition's own reduced potential (Chodera 2016); the
+        # spacing from the slowest watched observable after it
+        t0 = decorrelate(series[0]).t0
+        g = max([1.0] + [compute_statistical_inefficiency(s[t0:]) for s in series if np.ptp(s[t0:]) > 0])
+        keep = t0 + np.unique(np.floor(np.arange(0, production.size - t0, g) + 0.5).astype(int))
+        keep = keep[keep < production.size]
+        if keep.size < MIN_SAMPLES:
+            raise AnalysisError(f"{folder}: condition {k} has only {keep.size} uncorrelated samples "
+                                f"(g = {g:.1f} cycles); run longer before analysing.")
+        picks.append((walker_t[keep], production[keep]))
+        t0_k.append(t0)
+        g_k.append(g)
+    total = sum(len(w) for w, _ in picks)
+    stride = thinning_stride(total, len(data.conditions), memory)
+    strides = [max(1, min(stride, len(w) // MIN_SAMPLES)) for w, _ in picks]
+    if stride > 1:
+        picks = [(w[::k], c[::k]) for (w, c), k in zip(picks, strides)]
+        warnings.warn(f"MBAR uses {sum(len(w) for w, _ in picks)} of the {total} uncorrelated samples "
+                      f"(1 in {stride}, evenly spaced) to stay within analysis.memory ({memory / 2**30:.3g} GiB); "
+                      "boost analyze --memory raises it.", BoostWarning)
+    walkers_n = np.concatenate([w for w, _ in picks])
+    cycles_n = np.concatenate([c for _, c in picks])
+    u_kn = compute_sample_reduced_potentials(data, protocol, data.conditions, walkers_n, cycles_n)
+    N_k = np.array([len(w) for w, _ in picks])
+    return {"u_kn": u_kn, "N_k": N_k, "picks": picks, "t0_k": np.array(t0_k), "g_k": np.array(g_k),
+            "thinning_k": np.array(strides)}
+
+
+def basin_masks(protocol, coordinate_names, periodic, values_nc):
+    """Which samples lie in each basin (intervals per coordinate; dihedral intervals may wrap)."""
+    masks = {}
+    for name, intervals in protocol.basins.items():
+        mask = np.ones(len(values_nc), dtype=bool)
+        for coordinate, (lower, upper) in intervals.items():
+            c = coordinate_names.index(coordinate)
+            x = values_nc[:, c]
+            if periodic[c] and lower > upper:
+                mask &= (x >= lower) | (x < upper)
+            else:
+                mask &= (x >= lower) & (x < upper)
+        masks[name] = mask
+    return masks
+
+

@@ -5,10 +5,13 @@ last f (common practice for judging convergence by eye and by rule). The forward
 reverse estimates at one half are the two halves of production, independent of each
 other, which :mod:`boost.verdict` compares.
 
-Pure numpy: the estimates themselves come from a callable, so this module knows nothing
-of MBAR.
+A part's standard error is the full run's, scaled by sqrt(n / n_part) for the samples it
+holds: errors of averages over stationary data shrink as 1/sqrt(samples), and the full
+run's error already carries whatever correlation its method (asymptotic or bootstrap)
+saw. Pure numpy: the estimates come from a callable, so this module knows nothing of MBAR.
 """
 
+import math
 import warnings
 from dataclasses import dataclass
 
@@ -23,75 +26,71 @@ HALF = FRACTIONS.index(0.5)
 
 @dataclass(frozen=True, eq=False)
 class Cumulative:
-    """Forward and reverse cumulative estimates of named numbers.
+    """Forward and reverse cumulative estimates of a vector of statistics.
 
     Attributes
     ----------
     fractions : ndarray, shape (n_fractions,)
-    names : tuple of str, length n_numbers
-    forward, d_forward, reverse, d_reverse : ndarray, shape (n_numbers, n_fractions)
-        Estimates and standard errors, in each number's own unit; NaN where a part of
+    forward, d_forward, reverse, d_reverse : ndarray, shape (n_statistics, n_fractions)
+        Estimates and standard errors, in each statistic's own unit; NaN where a part of
         production gave no estimate (too few samples in it, or MBAR failed).
     """
 
     fractions: np.ndarray
-    names: tuple
     forward: np.ndarray
     d_forward: np.ndarray
     reverse: np.ndarray
     d_reverse: np.ndarray
 
-    def halves(self, name):
-        """(first, d_first, second, d_second) for one number."""
-        i = self.names.index(name)
-        return (self.forward[i, HALF], self.d_forward[i, HALF], self.reverse[i, HALF],
-                self.d_reverse[i, HALF])
+    def halves(self, s):
+        """(first, d_first, second, d_second) of statistic s."""
+        return (self.forward[s, HALF], self.d_forward[s, HALF], self.reverse[s, HALF],
+                self.d_reverse[s, HALF])
 
 
-def compute_cumulative(estimate, position_n, names, *, fractions=FRACTIONS):
+def compute_cumulative(estimate, position_n, error_s, *, fractions=FRACTIONS):
     """Forward and reverse cumulative estimates over production.
 
     Parameters
     ----------
     estimate : callable
-        ``estimate(columns)`` with ``columns`` an int array of sample indices returns a
-        dict of name -> (value, standard error); it may raise AnalysisError when the part
-        holds too little to estimate from.
+        ``estimate(multiplicity_n)`` with a 0/1 int array over the samples returns the
+        statistics of that part, shape (n_statistics,); it may raise AnalysisError when
+        the part holds too little to estimate from.
     position_n : array_like, shape (n_samples,)
-        Where each sample lies in production, as a fraction in [0, 1) (production cycle
-        index over the number of production cycles).
-    names : sequence of str
-        The numbers to record (keys of what ``estimate`` returns).
+        Where each sample lies in production, as a fraction in [0, 1).
+    error_s : array_like, shape (n_statistics,)
+        Standard errors of the statistics from all samples.
 
     Returns
     -------
     Cumulative
     """
     position_n = np.asarray(position_n, dtype=float)
-    names = tuple(names)
-    shape = (len(names), len(fractions))
+    error_s = np.asarray(error_s, dtype=float)
+    shape = (error_s.size, len(fractions))
     out = {key: np.full(shape, np.nan) for key in ("forward", "d_forward", "reverse", "d_reverse")}
     for j, fraction in enumerate(fractions):
         parts = {"forward": position_n < fraction - 1e-12, "reverse": position_n >= 1.0 - fraction - 1e-12}
-        for direction, mask in parts.items():
-            if direction == "reverse" and fraction == 1.0:
+        for direction, inside in parts.items():
+            if not inside.any():
+                continue
+            if direction == "reverse" and fraction == 1.0:     # all of production, as forward
                 out["reverse"][:, j], out["d_reverse"][:, j] = out["forward"][:, j], out["d_forward"][:, j]
                 continue
-            result = _estimate_quietly(estimate, np.flatnonzero(mask))
-            for i, name in enumerate(names):
-                if name in result:
-                    out[direction][i, j], out["d_" + direction][i, j] = result[name]
-    return Cumulative(fractions=np.array(fractions), names=names, **out)
+            value_s = _estimate_quietly(estimate, inside.astype(int))
+            if value_s is not None:
+                out[direction][:, j] = value_s
+                out["d_" + direction][:, j] = error_s * math.sqrt(position_n.size / inside.sum())
+    return Cumulative(fractions=np.array(fractions), **out)
 
 
-def _estimate_quietly(estimate, columns):
-    """The estimate on a part, or {} where the part is too small; its warnings are the
-    full run's warnings again (poor overlap, sparse bins) and would only repeat them."""
-    if columns.size == 0:
-        return {}
-    with warnings.catch_warnings():
+def _estimate_quietly(estimate, multiplicity_n):
+    """The statistics of a part, or None where it is too small to estimate from. Its
+    warnings are the full run's again (poor overlap, sparse bins) and would only repeat them."""
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
         warnings.simplefilter("ignore")
         try:
-            return estimate(columns)
+            return np.asarray(estimate(multiplicity_n), dtype=float)
         except AnalysisError:
-            return {}
+            return None

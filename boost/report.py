@@ -33,24 +33,90 @@ def format_summary(analysis):
     basins = analysis.basins
     if basins is not None:
         lines.append(f"{'basin':12s} {'population':>11s} {'± error':>9s} {'95% low':>8s} {'95% high':>8s} "
-                     f"{'G − G(' + basins.names[0] + ') (' + unit + ')':>24s} {'± error':>9s}")
+                     f"{'G − G(' + basins.names[0] + ') (' + unit + ')':>24s} {'± error':>9s}  verdict")
         for i, name in enumerate(basins.names):
             lines.append(f"{name:12s} {_fmt(basins.populations[i], 4):>11s} {_fmt(basins.d_populations[i], 4):>9s} "
                          f"{_fmt(basins.populations_low[i], 4):>8s} {_fmt(basins.populations_high[i], 4):>8s} "
-                         f"{_fmt(basins.Delta_g[0, i]):>24s} {_fmt(basins.d_Delta_g[0, i]):>9s}")
+                         f"{_fmt(basins.Delta_g[0, i]):>24s} {_fmt(basins.d_Delta_g[0, i]):>9s}  "
+                         f"{_word(_population_verdict(analysis, i))}")
         lines += _bound_notes(basins)
+        lines += _verdict_notes(analysis)
     for profile in analysis.profiles:
         if len(profile.coordinates) == 1:
             finite = np.isfinite(profile.f)
             top = np.nanmax(profile.f[finite]) if finite.any() else math.nan
             lines.append(f"PMF along {profile.coordinates[0]}: {finite.sum()} bins with samples, "
-                         f"highest {_fmt(top, 2)} {unit} above the minimum")
+                         f"highest {_fmt(top, 2)} {unit} above the minimum{_profile_tally(analysis, profile)}")
     if analysis.poor_pairs:
         lines.append(f"warning: {len(analysis.poor_pairs)} neighbouring pair(s) overlap poorly (see above)")
     if analysis.swaps is not None:
         trips = analysis.swaps.round_trips_r
         lines.append(f"round trips per walker: {', '.join(str(int(t)) for t in trips)}")
+    lines += _acceptance_notes(analysis)
     return "\n".join(lines)
+
+
+# -- verdicts -----------------------------------------------------------------------------
+VERDICT_HEADINGS = ["verdict", "verdict reason", "independent samples", "first half", "second half",
+                    "halves differ by (combined errors)"]
+
+
+def _word(verdict):
+    return "–" if verdict is None else verdict.word
+
+
+def _population_verdict(analysis, i):
+    return analysis.verdicts.populations[i] if analysis.verdicts is not None else None
+
+
+def _delta_g_verdict(analysis, i, j):
+    if analysis.verdicts is None or i == j:
+        return None
+    return analysis.verdicts.delta_g.get((min(i, j), max(i, j)))
+
+
+def _verdict_cells(verdict, digits=4):
+    if verdict is None:
+        return ["", "", "", "", "", ""]
+    return [verdict.word, verdict.reason, _fmt(verdict.independent, 0), _fmt(verdict.first_half, digits),
+            _fmt(verdict.second_half, digits), _fmt(verdict.halves_z, 2)]
+
+
+def _verdict_json(verdict):
+    if verdict is None:
+        return None
+    return {"word": verdict.word, "reason": verdict.reason, "independent samples": _number(verdict.independent),
+            "first half": _number(verdict.first_half), "second half": _number(verdict.second_half),
+            "halves differ by (combined errors)": _number(verdict.halves_z)}
+
+
+def _verdict_notes(analysis):
+    """One line per basin population and ΔG saying why its verdict is what it is."""
+    if analysis.verdicts is None:
+        return []
+    names = analysis.basins.names
+    notes = [f"  {name}: {v.word}, {v.reason}" for name, v in zip(names, analysis.verdicts.populations)]
+    notes += [f"  ΔG {names[i]} → {names[j]}: {v.word}, {v.reason}"
+              for (i, j), v in analysis.verdicts.delta_g.items() if i == 0]
+    return notes
+
+
+def _profile_tally(analysis, profile):
+    if analysis.verdicts is None:
+        return ""
+    verdicts = analysis.verdicts.profiles[analysis.profiles.index(profile)]
+    words = [v.word for v in np.ravel(verdicts) if v is not None]
+    return "; bins " + ", ".join(f"{words.count(w)} {w}" for w in ("settled", "drifting", "too few samples")
+                                 if words.count(w))
+
+
+def _acceptance_notes(analysis):
+    if analysis.verdicts is None or not analysis.verdicts.acceptance:
+        return []
+    rows = analysis.verdicts.acceptance
+    unsettled = [f"{i}–{j} {v.word} ({v.reason})" for i, j, _, _, v in rows if v.word != "settled"]
+    head = f"swap acceptance of {len(rows)} neighbouring pairs: "
+    return [head + ("all settled" if not unsettled else "; ".join(unsettled))]
 
 
 def _method(analysis):
@@ -81,6 +147,8 @@ def write_report(analysis, folder=None):
         _write_profile(analysis, profile, out)
     if analysis.swaps is not None:
         _write_swaps(analysis, out)
+    if analysis.verdicts is not None and analysis.verdicts.cumulative is not None:
+        _write_convergence(analysis, out)
     (out / "summary.json").write_text(json.dumps(_summary(analysis), indent=2))
     _plot_all(analysis, out)
     return out
@@ -109,16 +177,18 @@ def _write_conditions(analysis, out):
 def _write_basins(analysis, out):
     basins, unit, method = analysis.basins, analysis.energy_unit, _method(analysis)
     _write_rows(out / "basins.csv", ["basin", "population", "population error", "population 95% low",
-                                     "population 95% high", "error method"],
-                [(n, _fmt(basins.populations[i], 5), _fmt(basins.d_populations[i], 5),
-                  _fmt(basins.populations_low[i], 5), _fmt(basins.populations_high[i], 5), method)
+                                     "population 95% high", "error method"] + VERDICT_HEADINGS,
+                [[n, _fmt(basins.populations[i], 5), _fmt(basins.d_populations[i], 5),
+                  _fmt(basins.populations_low[i], 5), _fmt(basins.populations_high[i], 5), method]
+                 + _verdict_cells(_population_verdict(analysis, i), 5)
                  for i, n in enumerate(basins.names)])
-    rows = [(a, b, _fmt(basins.Delta_g[i, j], 4), _fmt(basins.d_Delta_g[i, j], 4),
-             _fmt(basins.Delta_g_low[i, j], 4), _fmt(basins.Delta_g_high[i, j], 4), method)
+    rows = [[a, b, _fmt(basins.Delta_g[i, j], 4), _fmt(basins.d_Delta_g[i, j], 4),
+             _fmt(basins.Delta_g_low[i, j], 4), _fmt(basins.Delta_g_high[i, j], 4), method]
+            + _verdict_cells(_delta_g_verdict(analysis, i, j))
             for i, a in enumerate(basins.names) for j, b in enumerate(basins.names) if i != j]
     _write_rows(out / "free-energy-differences.csv",
                 ["from basin", "to basin", f"ΔG ({unit})", f"ΔG error ({unit})", f"ΔG 95% low ({unit})",
-                 f"ΔG 95% high ({unit})", "error method"], rows)
+                 f"ΔG 95% high ({unit})", "error method"] + VERDICT_HEADINGS, rows)
 
 
 def _profile_name(profile):
@@ -129,13 +199,16 @@ def _write_profile(analysis, profile, out):
     unit, method = analysis.energy_unit, _method(analysis)
     labels = [_axis_label(n, _is_angle(analysis, n)) for n in profile.coordinates]
     grids = np.meshgrid(*profile.centres, indexing="ij")
+    verdicts = (analysis.verdicts.profiles[analysis.profiles.index(profile)] if analysis.verdicts is not None
+                else np.full(profile.f.shape, None, dtype=object))
     rows = [[_fmt(g[index], 5) for g in grids] + [_fmt(profile.f[index], 4), _fmt(profile.df[index], 4),
                                                    _fmt(profile.f_low[index], 4), _fmt(profile.f_high[index], 4),
                                                    int(profile.counts[index]), method]
+            + _verdict_cells(verdicts[index])
             for index in np.ndindex(profile.f.shape)]
     _write_rows(out / f"{_profile_name(profile)}.csv",
                 labels + [f"PMF ({unit})", f"PMF error ({unit})", f"PMF 95% low ({unit})", f"PMF 95% high ({unit})",
-                          "samples", "error method"], rows)
+                          "samples", "error method"] + VERDICT_HEADINGS, rows)
 
 
 def _write_swaps(analysis, out):
@@ -145,6 +218,10 @@ def _write_swaps(analysis, out):
                 [[k] + [_fmt(x, 4) for x in row] for k, row in enumerate(swaps.acceptance_ij)])
     _write_rows(out / "round-trips.csv", ["walker", "round trips"],
                 [(r, int(t)) for r, t in enumerate(swaps.round_trips_r)])
+    if analysis.verdicts is not None and analysis.verdicts.acceptance:
+        _write_rows(out / "neighbour-swaps.csv", ["condition", "other condition", "acceptance (fraction)", "attempts"]
+                    + VERDICT_HEADINGS,
+                    [[i, j, _fmt(a, 4), n] + _verdict_cells(v) for i, j, a, n, v in analysis.verdicts.acceptance])
 
 
 def _clean(array):
@@ -166,6 +243,13 @@ def _uncertainty_summary(analysis):
     return result
 
 
+def _profile_counts(analysis, profile):
+    if analysis.verdicts is None:
+        return None
+    words = [v.word for v in np.ravel(analysis.verdicts.profiles[analysis.profiles.index(profile)]) if v is not None]
+    return {w: words.count(w) for w in ("settled", "drifting", "too few samples")}
+
+
 def _summary(analysis):
     result = {"temperature (K)": analysis.temperature, "energy unit": analysis.energy_unit,
               "cycles in ledger": analysis.n_cycles, "error bars": _uncertainty_summary(analysis),
@@ -178,16 +262,21 @@ def _summary(analysis):
         result["basins"] = {name: {"population": float(b.populations[i]),
                                    "population error": _number(b.d_populations[i]),
                                    "population 95% low": _number(b.populations_low[i]),
-                                   "population 95% high": _number(b.populations_high[i])}
+                                   "population 95% high": _number(b.populations_high[i]),
+                                   "verdict": _verdict_json(_population_verdict(analysis, i))}
                             for i, name in enumerate(b.names)}
         result["free-energy differences"] = [
             {"from": a, "to": c, f"ΔG ({unit})": float(b.Delta_g[i, j]),
              f"ΔG error ({unit})": _number(b.d_Delta_g[i, j]),
              f"ΔG 95% low ({unit})": _number(b.Delta_g_low[i, j]),
-             f"ΔG 95% high ({unit})": _number(b.Delta_g_high[i, j])}
+             f"ΔG 95% high ({unit})": _number(b.Delta_g_high[i, j]),
+             "verdict": _verdict_json(_delta_g_verdict(analysis, i, j))}
             for i, a in enumerate(b.names) for j, c in enumerate(b.names) if i < j]
-    result["profiles"] = [{"coordinates": list(p.coordinates), "file": _profile_name(p) + ".csv"}
-                          for p in analysis.profiles]
+    result["profiles"] = [{"coordinates": list(p.coordinates), "file": _profile_name(p) + ".csv",
+                           "bins by verdict": _profile_counts(analysis, p)} for p in analysis.profiles]
+    if analysis.verdicts is not None and analysis.verdicts.acceptance:
+        result["neighbour swaps"] = [{"conditions": [i, j], "acceptance": _number(a), "attempts": n,
+                                      "verdict": _verdict_json(v)} for i, j, a, n, v in analysis.verdicts.acceptance]
     if analysis.swaps is not None:
         result["round trips per walker"] = [int(t) for t in analysis.swaps.round_trips_r]
     return result
@@ -220,6 +309,8 @@ def _plot_all(analysis, out):
         _plot_windows(analysis, out, plt)
     if analysis.swaps is not None:
         _plot_swaps(analysis, out, plt)
+    if analysis.verdicts is not None and analysis.verdicts.cumulative is not None:
+        _plot_convergence(analysis, out, plt)
 
 
 def _plot_windows(analysis, out, plt):
@@ -258,4 +349,45 @@ def _plot_swaps(analysis, out, plt):
     ax.set_ylim(0, 1)
     fig.tight_layout()
     fig.savefig(out / "swap-acceptance.png", dpi=120)
+    plt.close(fig)
+
+
+def _convergence_series(analysis):
+    """(label, unit, row) for each number of the convergence plot and table."""
+    names, unit = analysis.basins.names, analysis.energy_unit
+    series = [(f"population of {name}", "fraction", i) for i, name in enumerate(names)]
+    series += [(f"ΔG {names[0]} → {name}", unit, len(names) + j - 1) for j, name in enumerate(names) if j > 0]
+    return series
+
+
+def _write_convergence(analysis, out):
+    c, length = analysis.verdicts.cumulative, analysis.verdicts.production_ps
+    rows = [[label, f"{fraction:.2f}", _fmt(fraction * length, 2), _fmt(c.forward[row, j], 5),
+             _fmt(c.d_forward[row, j], 5), _fmt(c.reverse[row, j], 5), _fmt(c.d_reverse[row, j], 5)]
+            for label, _, row in _convergence_series(analysis) for j, fraction in enumerate(c.fractions)]
+    _write_rows(out / "convergence.csv", ["number", "fraction of production", "production used (ps)",
+                                          "from the start", "from the start error", "from the end",
+                                          "from the end error"], rows)
+
+
+def _plot_convergence(analysis, out, plt):
+    c, length = analysis.verdicts.cumulative, analysis.verdicts.production_ps
+    series = _convergence_series(analysis)
+    fig, axes = plt.subplots(1, len(series), figsize=(4.2 * len(series), 3.8), squeeze=False)
+    t = c.fractions * length
+    for ax, (label, unit, row) in zip(axes[0], series):
+        for values, errors, colour, what in ((c.forward, c.d_forward, "tab:blue", "first part of production"),
+                                             (c.reverse, c.d_reverse, "tab:orange", "last part of production")):
+            ax.plot(t, values[row], "o-", ms=3, color=colour, label=what)
+            low, high = values[row] - errors[row], values[row] + errors[row]
+            if unit == "fraction":          # a population's band stays inside its possible range
+                low, high = np.clip(low, 0.0, 1.0), np.clip(high, 0.0, 1.0)
+            ax.fill_between(t, low, high, color=colour, alpha=0.2)
+        ax.axhline(c.forward[row, -1], color="0.4", lw=0.8, ls="--", label="all of production")
+        ax.set_xlabel("production used (ps)")
+        ax.set_ylabel(f"{label} ({unit})")
+    axes[0][0].legend(fontsize="small", loc="best")
+    fig.suptitle("estimates from growing parts of production (± one standard error)", fontsize="medium")
+    fig.tight_layout()
+    fig.savefig(out / "convergence.png", dpi=120)
     plt.close(fig)

@@ -464,10 +464,10 @@ def test_target_temperature_outside_the_ladder(small_ladder):
 
 def test_samples_beyond_analysis_memory_are_thinned_evenly_and_stay_right(one_window, monkeypatch):
     # Pretend MBAR needs far more memory per sample, so a quarter of the samples fit.
-    import boost.analysis
+    import boost.analysis.samples
     protocol, folder, full = one_window
     n_full = int(full.samples_k.sum())
-    monkeypatch.setattr(boost.analysis, "MBAR_COPIES", int(0.6 * 2**30 / (8 * n_full / 4)))
+    monkeypatch.setattr(boost.analysis.samples, "MBAR_COPIES", int(0.6 * 2**30 / (8 * n_full / 4)))
     with pytest.warns(BoostWarning, match=r"MBAR uses \d+ of the \d+ uncorrelated samples \(1 in [45], evenly"):
         thinned = analyse_run(folder, energy_unit="kT")
     assert n_full / 5 <= thinned.samples_k.sum() <= n_full / 3.9

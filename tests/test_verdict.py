@@ -65,29 +65,32 @@ from boost.exceptions import AnalysisError  # noqa: E402
 
 
 def _mean_estimate(x_n):
-    def estimate(columns):
-        if columns.size < 3:
+    def estimate(multiplicity_n):
+        if multiplicity_n.sum() < 3:
             raise AnalysisError("too few")
-        part = x_n[columns]
-        return {"mean": (part.mean(), part.std(ddof=1) / math.sqrt(part.size))}
+        return [np.average(x_n, weights=multiplicity_n)]
     return estimate
 
 
-def test_halves_partition_production_and_full_fractions_agree():
+def test_halves_partition_production_and_errors_scale_with_samples():
     # exact: the first and last halves of 1,000 evenly spread samples are disjoint and
-    # together are all of them; a linear trend x = t puts their means at 0.25 and 0.75
+    # together are all of them; a linear trend x = t puts their means at 0.25 and 0.75.
+    # An average's error over stationary data scales as 1/sqrt(samples) (exact for
+    # independent samples): each half's error is sqrt(2) times the whole run's.
     n = 1000
     position_n = np.arange(n) / n
-    cumulative = compute_cumulative(_mean_estimate(position_n), position_n, ["mean"])
-    first, _, second, _ = cumulative.halves("mean")
+    cumulative = compute_cumulative(_mean_estimate(position_n), position_n, [0.01])
+    first, d_first, second, d_second = cumulative.halves(0)
     assert first == pytest.approx(np.mean(position_n[:500])) and second == pytest.approx(np.mean(position_n[500:]))
+    assert d_first == pytest.approx(0.01 * math.sqrt(2)) and d_second == pytest.approx(0.01 * math.sqrt(2))
     assert cumulative.forward[0, -1] == cumulative.reverse[0, -1] == pytest.approx(np.mean(position_n))
     assert cumulative.forward[0, 0] == pytest.approx(np.mean(position_n[:100]))
     assert cumulative.reverse[0, 0] == pytest.approx(np.mean(position_n[900:]))
+    assert cumulative.d_forward[0, 0] == pytest.approx(0.01 * math.sqrt(10))
     assert len(cumulative.fractions) == len(FRACTIONS)
 
 
 def test_parts_too_small_to_estimate_are_gaps_not_errors():
     position_n = np.array([0.05, 0.5, 0.55, 0.6, 0.95])
-    cumulative = compute_cumulative(_mean_estimate(np.arange(5.0)), position_n, ["mean"])
+    cumulative = compute_cumulative(_mean_estimate(np.arange(5.0)), position_n, [0.1])
     assert np.isnan(cumulative.forward[0, 0]) and np.isfinite(cumulative.forward[0, -1])

@@ -21,10 +21,11 @@ from ..units import energy_in
 from .errorbars import compute_bootstrap_errors, uses_bootstrap
 from .estimates import compute_basin_results, compute_profiles, population_interval
 from .results import Analysis, BasinResult, ProfileResult, Uncertainty
+from .verdicts import Verdicts, compute_verdicts
 from .samples import (MBAR_COPIES, MBAR_SHARE, MIN_SAMPLES, basin_masks, compute_sample_reduced_potentials,
                       condition_labels, gather, load_run, select_samples, thinning_stride, window_values)
 
-__all__ = ["Analysis", "BasinResult", "ProfileResult", "Uncertainty", "analyse_run", "basin_masks",
+__all__ = ["Analysis", "BasinResult", "ProfileResult", "Uncertainty", "Verdicts", "analyse_run", "basin_masks",
            "compute_sample_reduced_potentials", "condition_labels", "load_run", "population_interval",
            "select_samples", "thinning_stride", "MBAR_COPIES", "MBAR_SHARE", "MIN_SAMPLES"]
 
@@ -60,10 +61,12 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
     production = set(data.cycle_t[data.production_t].tolist())
     profiles = compute_profiles(mbar, u_n, values_nc, data, protocol, scale)
     basins = compute_basin_results(mbar, u_n, values_nc, data, protocol, scale)
-    df_k, uncertainty = mbar.df_k, Uncertainty("asymptotic")
+    df_k, uncertainty, asymptotic = mbar.df_k, Uncertainty("asymptotic"), (profiles, basins)
     if uses_bootstrap(protocol):
         df_k, profiles, basins, uncertainty = compute_bootstrap_errors(
             mbar, u_n, samples, data, protocol, folder, profiles, basins, scale)
+    verdicts = compute_verdicts(mbar, u_n, samples, data, protocol, profiles, basins, asymptotic, uncertainty,
+                                scale)
     return Analysis(
         folder=str(folder), temperature=temperature, energy_unit=unit, n_cycles=len(data.cycle_t),
         samples_k=N_k, thinning_k=samples["thinning_k"], t0_k=samples["t0_k"], g_k=samples["g_k"],
@@ -72,6 +75,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
         profiles=tuple(p for p, _ in profiles),
         basins=basins[0] if basins else None,
         uncertainty=uncertainty,
+        verdicts=verdicts,
         swaps=summarise_swaps(data.swaps, data.condition_rt[:, data.production_t], len(data.conditions),
                               production) if protocol.exchange else None,
         condition_labels=labels, window_values=window_values(data, protocol),

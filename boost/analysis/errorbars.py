@@ -37,7 +37,7 @@ def compute_bootstrap_errors(mbar, u_n, samples, data, protocol, folder, profile
     except AnalysisError as err:
         raise AnalysisError(f"{folder}: {err}") from None
     walker_g = max(_walker_inefficiency(data, protocol, cycles), float(max(samples["g_k"])))
-    block = settings.block_cycles
+    block, shortened = settings.block_cycles, False
     if block and cycles.size // block < resample.MIN_BLOCKS:
         raise AnalysisError(f"{folder}: analysis.uncertainty.block ({block} cycles) leaves fewer than "
                             f"{resample.MIN_BLOCKS} blocks in the {cycles.size} cycles analysed; "
@@ -54,7 +54,7 @@ def compute_bootstrap_errors(mbar, u_n, samples, data, protocol, folder, profile
     position_n = np.searchsorted(cycles, np.concatenate([c for _, c in samples["picks"]]))
     masks = basins[1] if basins else None
     result = resample.run_replicates(
-        lambda count_t: _replicate(mbar, u_n, count_t[position_n], masks, [b for _, b in profiles]), count_bt)
+        lambda count_t: compute_statistics(mbar, u_n, count_t[position_n], masks, [b for _, b in profiles]), count_bt)
     if result.n_failed == settings.resamples:
         raise AnalysisError(f"{folder}: MBAR converged on none of the {settings.resamples} bootstrap resamples; "
                             "set analysis.uncertainty.method: asymptotic.")
@@ -62,7 +62,8 @@ def compute_bootstrap_errors(mbar, u_n, samples, data, protocol, folder, profile
         warnings.warn(f"MBAR did not converge on {result.n_failed} of the {settings.resamples} bootstrap resamples; "
                       "the error bars come from the others.", ConvergenceWarning, stacklevel=3)
     uncertainty = Uncertainty("bootstrap", settings.resamples, block, not settings.block_cycles,
-                              result.n_failed, walker_g, protocol.run.steps_per_cycle * protocol.timestep)
+                              result.n_failed, walker_g, protocol.run.steps_per_cycle * protocol.timestep,
+                              shortened)
     return (*_with_bootstrap(result, len(samples["N_k"]), profiles, basins, scale), uncertainty)
 
 
@@ -94,8 +95,9 @@ def _walker_inefficiency(data, protocol, cycles):
     return g
 
 
-def _replicate(mbar, u_n, multiplicity_n, mask_bn, profile_bins):
-    """One replicate's f_k (kT), basin populations, ΔG matrix (kT) and PMF bins (kT), flat."""
+def compute_statistics(mbar, u_n, multiplicity_n, mask_bn, profile_bins):
+    """f_k (kT), basin populations, ΔG matrix (kT) and PMF bins (kT), flat, of the samples taken
+    ``multiplicity_n`` times each (a bootstrap replicate, or a part of production)."""
     columns = np.repeat(np.arange(u_n.size), multiplicity_n)
     replicate = mbar.subset(columns)
     w_n = replicate.target_weights(u_n[columns])

@@ -43,6 +43,7 @@ class Uncertainty:
     failed: int = 0      # replicates whose MBAR did not converge (left out of the bars)
     walker_g: float = math.nan  # largest statistical inefficiency along a walker's path (cycles)
     cycle_ps: float = math.nan  # length of a cycle (ps)
+    cut_short: bool = False     # blocks shorter than the walkers' correlation asks for
 
     @property
     def label(self):
@@ -78,5 +79,6 @@ class Analysis:
     angle_coordinates: frozenset   # coordinates reported in degrees
     walker_traces: np.ndarray      # condition_rt over production cycles
     uncertainty: Uncertainty = Uncertainty("asymptotic")
+    verdicts: object = None        # analysis.verdicts.Verdicts
 
 

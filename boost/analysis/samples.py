@@ -113,7 +113,7 @@ def select_samples(data, protocol, folder, memory):
         keep = keep[keep < production.size]
         if keep.size < MIN_SAMPLES:
             raise AnalysisError(f"{folder}: condition {k} has only {keep.size} uncorrelated samples "
-                                f"(g = {g:.1f} cycles); run longer before analysing.")
+                                f"(g = {g:.1f} cycles): too few samples to analyse; run longer.")
         picks.append((walker_t[keep], production[keep]))
         t0_k.append(t0)
         g_k.append(g)

@@ -18,7 +18,8 @@ growing prefixes of its ledger (a copy cut back with Ledger.truncate_after) are 
 with boost.analysis.analyse_run, as ``boost analyze`` would on a run still going. The
 wall time of a prefix ending at cycle c is plan + setup + loop time × (c + 1) / cycles
 (the loop runs at a steady rate). Time to answer = the earliest prefix from which every
-later prefix stays within the tolerance ('first within' is reported too). A method that
+later prefix stays within the tolerance and boost's verdict on ΔG says 'settled' ('first
+within' and 'stays within' are reported too). A method that
 never gets there has time > its run's wall time, and a ratio against it is a lower
 bound, marked '>'. Plain MD prefixes are analysed from the longest down, each in a
 subprocess with a time limit, and only until one misses (shorter ones cannot change
@@ -137,7 +138,7 @@ def exact_double_well_delta_g():
 
 
 def delta_g(folder, energy_unit):
-    """(ΔG first basin -> second, its error) from analyse_run, or None when not estimable."""
+    """(ΔG first basin -> second, its error, its verdict word) from analyse_run, or None."""
     from boost.analysis import analyse_run
     from boost.exceptions import BoostError
 
@@ -150,7 +151,8 @@ def delta_g(folder, energy_unit):
     basins = result.basins
     if basins is None or len(basins.names) < 2:
         return None
-    return float(basins.Delta_g[0, 1]), float(basins.d_Delta_g[0, 1])
+    verdict = result.verdicts.delta_g.get((0, 1)) if result.verdicts is not None else None
+    return float(basins.Delta_g[0, 1]), float(basins.d_Delta_g[0, 1]), verdict.word if verdict else None
 
 
 _CHILD = r"""
@@ -205,7 +207,7 @@ def all_basins_visited_at(folder):
 
 
 def prefix_series(run, folder, energy_unit, n_prefixes, work, *, exact=None, tolerance=None, timeout=None):
-    """[(wall s, cycles, ΔG or None, error)] for growing prefixes of a finished run.
+    """[(wall s, cycles, ΔG or None, error, verdict word)] for growing prefixes of a finished run.
 
     With ``timeout`` (plain MD): each analysis runs in a subprocess for at most that
     long (ΔG TIMED_OUT beyond), and prefixes are analysed from the longest down only
@@ -231,10 +233,10 @@ def prefix_series(run, folder, energy_unit, n_prefixes, work, *, exact=None, tol
     for end in ends:            # longest first: each cut only removes cycles
         wall = run["plan_s"] + run["setup_s"] + run["loop_s"] * (end + 1) / n
         if stop:
-            series.append((wall, end + 1, None, "skipped"))
+            series.append((wall, end + 1, None, "skipped", None))
             continue
         if visited is None or end < visited:
-            series.append((wall, end + 1, None, None))
+            series.append((wall, end + 1, None, None, None))
             stop = timeout is not None
             continue
         ledger = Ledger(copy / LEDGER)
@@ -242,9 +244,9 @@ def prefix_series(run, folder, energy_unit, n_prefixes, work, *, exact=None, tol
         ledger.close()
         value = delta_g(copy, energy_unit) if timeout is None else delta_g_with_timeout(copy, energy_unit, timeout)
         if value == TIMED_OUT:
-            series.append((wall, end + 1, None, TIMED_OUT))
+            series.append((wall, end + 1, None, TIMED_OUT, None))
         else:
-            series.append((wall, end + 1, *(value or (None, None))))
+            series.append((wall, end + 1, *(value or (None, None, None))))
         if timeout is not None and (series[-1][2] is None or abs(series[-1][2] - exact) > tolerance):
             stop = True
     shutil.rmtree(copy)
@@ -253,15 +255,24 @@ def prefix_series(run, folder, energy_unit, n_prefixes, work, *, exact=None, tol
 
 
 def time_to_answer(series, exact, tolerance):
-    """(first within, stays within from) wall times in s; None when never."""
-    inside = [g is not None and abs(g - exact) <= tolerance for _, _, g, _ in series]
+    """(first within, stays within from, settled and within from) wall times in s; None when never.
+
+    The last: from that prefix on, every prefix is within the tolerance and boost's own
+    verdict on ΔG says 'settled' (the answer a user could act on without knowing it).
+    """
+    inside = [g is not None and abs(g - exact) <= tolerance for _, _, g, _, _ in series]
     first = next((s[0] for s, ok in zip(series, inside) if ok), None)
+    return first, _stays_from(series, inside), _stays_from(
+        series, [ok and word == "settled" for ok, (*_, word) in zip(inside, series)])
+
+
+def _stays_from(series, good):
     stays = None
-    for s, ok in zip(reversed(series), reversed(inside)):
+    for s, ok in zip(reversed(series), reversed(good)):
         if not ok:
             break
         stays = s[0]
-    return first, stays
+    return stays
 
 
 def show_series(name, series, exact, unit, tolerance):
@@ -271,7 +282,7 @@ def show_series(name, series, exact, unit, tolerance):
             return {"skipped": "  not analysed  ", TIMED_OUT: "analysis timeout"}.get(e, "        n/a     ")
         return f"{g:+.3f} ± {e:.3f}{' *' if abs(g - exact) <= tolerance else '  '}"
 
-    cells = [f"{w:7.1f} s: {cell(g, e)}" for w, _, g, e in series]
+    cells = [f"{w:7.1f} s: {cell(g, e)} {(word or '-')[:8]:8s}" for w, _, g, e, word in series]
     for i in range(0, len(cells), 3):
         print("    " + "   ".join(cells[i:i + 3]))
 
@@ -292,16 +303,17 @@ def compare(label, results, exact, tolerance, unit, plain_name):
     rows = []
     plain = results[plain_name]
     for name, (run, series) in results.items():
-        first, stays = time_to_answer(series, exact, tolerance)
+        first, within, stays = time_to_answer(series, exact, tolerance)
         total = series[-1][0]
-        g, e = series[-1][2], series[-1][3]
-        final = (e if isinstance(e, str) else "n/a") if g is None else f"{g:+.3f} ± {e:.3f}"
+        g, e, word = series[-1][2], series[-1][3], series[-1][4]
+        final = (e if isinstance(e, str) else "n/a") if g is None else f"{g:+.3f} ± {e:.3f} ({word})"
         rows.append([name, final, "-" if first is None else f"{first:.1f}",
+                     f"> {total:.1f}" if within is None else f"{within:.1f}",
                      f"> {total:.1f}" if stays is None else f"{stays:.1f}", stays, total])
-    plain_stays, plain_total = rows[list(results).index(plain_name)][4:6]
+    plain_stays, plain_total = rows[list(results).index(plain_name)][5:7]
     table, verdicts = [], []
     for row in rows:
-        name, stays, total = row[0], row[4], row[5]
+        name, stays, total = row[0], row[5], row[6]
         if name == plain_name:
             ratio_text, verdict = "1", ""
         elif stays is None:
@@ -313,17 +325,17 @@ def compare(label, results, exact, tolerance, unit, plain_name):
         else:
             ratio = plain_stays / stays
             ratio_text, verdict = f"{ratio:.1f}", benchlib.verdict(ratio, TARGET)
-        table.append((name, row[1], row[2], row[3], ratio_text, verdict))
+        table.append((name, row[1], row[2], row[3], row[4], ratio_text, verdict))
         verdicts.append((label, name, ratio_text, verdict))
     print(f"\n{label}: reference ΔG {exact:+.3f} {unit}, tolerance {tolerance} {unit}")
     benchlib.print_table(("method", f"ΔG at end ({unit})", "first within s", "stays within from s",
-                          "plain MD time / time", f"target >= {TARGET:g}x"), table)
+                          "settled and within from s", "plain MD time / time", f"target >= {TARGET:g}x"), table)
     return verdicts
 
 
 def plain_budget(results, exact, tolerance, cap):
     """Wall seconds for plain MD: 10.5x the slowest enhanced answer (or run), at most ``cap``."""
-    slowest = max(time_to_answer(series, exact, tolerance)[1] or series[-1][0] for _, series in results.values())
+    slowest = max(time_to_answer(series, exact, tolerance)[2] or series[-1][0] for _, series in results.values())
     return min(cap, 1.05 * TARGET * slowest)
 
 

@@ -21,3 +21,7 @@ def test_phi_umbrella_delta_g_is_in_the_published_band(tmp_path, repo):
     assert sigma < 0.6                                   # the demo resolves the difference
     assert basins.populations[i] > basins.populations[j]
     assert not analysis.poor_pairs                      # neighbouring windows overlap
+    # the README says what the demo's verdicts are: settled for both basins and ΔG
+    words = [v.word for v in analysis.verdicts.populations] + [analysis.verdicts.delta_g[(0, 1)].word]
+    print("demo verdicts", words, [v.reason for v in analysis.verdicts.populations])
+    assert words == ["settled"] * 3

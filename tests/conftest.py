@@ -3,6 +3,7 @@
 import textwrap
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 REPO = Path(__file__).resolve().parents[1]
@@ -49,3 +50,39 @@ basins:
 @pytest.fixture
 def double_well_text():
     return DOUBLE_WELL
+
+
+# Four rungs 300-1500 K: walkers reach 1500 K (barrier about 2 kT there) every few
+# picoseconds and carry their well down the ladder; 20 ps of equilibration lets the
+# wells fill from the start in the left one.
+SHORT_LADDER = """\
+protocol: 1
+title: short double-well temperature ladder
+system: double-well-high
+seed: 1
+temperature: 300 K
+timestep: 2 fs
+friction: 5/ps
+platform: {name: Reference, workers: 1}
+coordinates:
+  x: {position: 0, axis: x}
+temperatures: {lowest: 300 K, highest: 1500 K, count: 4}
+exchange: {pairs: adjacent}
+run:
+  cycle: 0.2 ps
+  equilibration: 20 ps
+  production: 300 ps
+basins:
+  left: {x: [-1 nm, 0 nm]}
+  right: {x: [0 nm, 1 nm]}
+"""
+
+
+def exact_high_well_left_population():
+    """exact: quadrature of exp(-U/kT) over each side of the bundled high double well at 300 K."""
+    from boost.models import read_model
+    from boost.spec import load_yaml
+
+    model = read_model(load_yaml(REPO / "systems" / "double-well-high.yaml", what="system").get("model"))
+    sides = {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}}
+    return model.compute_exact_populations(300.0, sides)["left"]

@@ -14,45 +14,11 @@ import numpy as np
 import pytest
 
 from boost.analysis import analyse_run
-from boost.models import read_model
 from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
-from boost.spec import load_yaml
+from conftest import SHORT_LADDER as LADDER, exact_high_well_left_population as exact_left_population
 
 REPO = Path(__file__).resolve().parents[1]
-SIDES = {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}}
-BASINS = """\
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-"""
-
-# Four rungs 300-1500 K: walkers reach 1500 K (barrier about 2 kT there) every few
-# picoseconds and carry their well down the ladder; 20 ps of equilibration lets the
-# wells fill from the start in the left one.
-LADDER = """\
-protocol: 1
-title: short double-well temperature ladder
-system: double-well-high
-seed: 1
-temperature: 300 K
-timestep: 2 fs
-friction: 5/ps
-platform: {name: Reference, workers: 1}
-coordinates:
-  x: {position: 0, axis: x}
-temperatures: {lowest: 300 K, highest: 1500 K, count: 4}
-exchange: {pairs: adjacent}
-run:
-  cycle: 0.2 ps
-  equilibration: 20 ps
-  production: 300 ps
-""" + BASINS
-
-
-def exact_left_population():
-    model = read_model(load_yaml(REPO / "systems" / "double-well-high.yaml", what="system").get("model"))
-    return model.compute_exact_populations(300.0, SIDES)["left"]
 
 
 def repeat_runs(template, seeds, tmp_path):
@@ -89,7 +55,7 @@ def report(name, rows, exact):
     print(f"  MBAR asymptotic: 95% coverage {old_fraction:.2f}, mean error / spread {old_ratio:.2f}")
     print(f"  blocks (cycles) per seed: {[a.uncertainty.block_cycles for a in auto]}")
     words = [a.verdicts.populations[0].word for a in auto]
-    print(f"  verdicts on the left population: " + ", ".join(f"{words.count(w)} {w}" for w in sorted(set(words))))
+    print("  verdicts on the left population: " + ", ".join(f"{words.count(w)} {w}" for w in sorted(set(words))))
     return fraction, ratio, words
 
 

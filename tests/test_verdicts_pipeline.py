@@ -10,26 +10,17 @@ import re
 import shutil
 from pathlib import Path
 
-import numpy as np
 import pytest
 
 from boost.analysis import analyse_run
-from boost.models import read_model
 from boost.protocol import load_protocol
 from boost.report import format_summary, write_report
 from boost.scheduler import run_protocol
-from boost.spec import load_yaml
 from boost.store import LEDGER, Ledger
 from boost.verdict import DRIFTING, SETTLED, TOO_FEW
+from conftest import SHORT_LADDER, exact_high_well_left_population as exact_left_population
 
 REPO = Path(__file__).resolve().parents[1]
-SIDES = {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}}
-
-
-def exact_left_population():
-    # exact: quadrature of exp(-U/kT) over each side of the bundled high double well
-    model = read_model(load_yaml(REPO / "systems" / "double-well-high.yaml", what="system").get("model"))
-    return model.compute_exact_populations(300.0, SIDES)["left"]
 
 
 def run(tmp_path, text, name="run"):
@@ -93,24 +84,7 @@ basins:
     assert verdict.word == TOO_FEW, verdict.reason
 
 
-LADDER = """\
-protocol: 1
-title: double-well temperature ladder
-system: double-well-high
-seed: 8
-temperature: 300 K
-timestep: 2 fs
-friction: 5/ps
-platform: {name: Reference, workers: 1}
-coordinates:
-  x: {position: 0, axis: x}
-temperatures: {lowest: 300 K, highest: 1500 K, count: 4}
-exchange: {pairs: adjacent}
-run: {cycle: 0.2 ps, equilibration: 20 ps, production: 300 ps}
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-"""
+LADDER = re.sub(r"^seed: .*$", "seed: 8", SHORT_LADDER, flags=re.M)
 
 
 @pytest.fixture(scope="module")

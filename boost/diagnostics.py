@@ -71,16 +71,20 @@ def count_round_trips(trace, lowest, highest):
     return trips
 
 
-def neighbour_overlaps(overlap, ladder_shape):
-    """(i, j, overlap) for every pair of neighbouring conditions on the ladder grid."""
+def neighbour_pairs_on_grid(ladder_shape):
+    """(i, j) for every pair of neighbouring conditions on the ladder grid, i < j."""
     index = np.arange(int(np.prod(ladder_shape))).reshape(ladder_shape)
     pairs = []
     for axis in range(len(ladder_shape)):
         moved = np.moveaxis(index, axis, 0)
         for step in range(ladder_shape[axis] - 1):
-            for i, j in zip(moved[step].ravel(), moved[step + 1].ravel()):
-                pairs.append((int(i), int(j), float(min(overlap[i, j], overlap[j, i]))))
+            pairs += [(int(i), int(j)) for i, j in zip(moved[step].ravel(), moved[step + 1].ravel())]
     return pairs
+
+
+def neighbour_overlaps(overlap, ladder_shape):
+    """(i, j, overlap) for every pair of neighbouring conditions on the ladder grid."""
+    return [(i, j, float(min(overlap[i, j], overlap[j, i]))) for i, j in neighbour_pairs_on_grid(ladder_shape)]
 
 
 def warn_poor_overlap(overlap, ladder_shape, describe):

@@ -41,12 +41,12 @@ def format_summary(analysis):
                          f"{_word(_population_verdict(analysis, i))}")
         lines += _bound_notes(basins)
         lines += _verdict_notes(analysis)
-    for profile in analysis.profiles:
+    for k, profile in enumerate(analysis.profiles):
         if len(profile.coordinates) == 1:
             finite = np.isfinite(profile.f)
             top = np.nanmax(profile.f[finite]) if finite.any() else math.nan
             lines.append(f"PMF along {profile.coordinates[0]}: {finite.sum()} bins with samples, "
-                         f"highest {_fmt(top, 2)} {unit} above the minimum{_profile_tally(analysis, profile)}")
+                         f"highest {_fmt(top, 2)} {unit} above the minimum{_profile_tally(analysis, k)}")
     if analysis.poor_pairs:
         lines.append(f"warning: {len(analysis.poor_pairs)} neighbouring pair(s) overlap poorly (see above)")
     if analysis.swaps is not None:
@@ -101,13 +101,9 @@ def _verdict_notes(analysis):
     return notes
 
 
-def _profile_tally(analysis, profile):
-    if analysis.verdicts is None:
-        return ""
-    verdicts = analysis.verdicts.profiles[analysis.profiles.index(profile)]
-    words = [v.word for v in np.ravel(verdicts) if v is not None]
-    return "; bins " + ", ".join(f"{words.count(w)} {w}" for w in ("settled", "drifting", "too few samples")
-                                 if words.count(w))
+def _profile_tally(analysis, k):
+    counts = _profile_counts(analysis, k)
+    return "" if counts is None else "; bins " + ", ".join(f"{n} {w}" for w, n in counts.items() if n)
 
 
 def _acceptance_notes(analysis):
@@ -143,8 +139,8 @@ def write_report(analysis, folder=None):
     _write_conditions(analysis, out)
     if analysis.basins is not None:
         _write_basins(analysis, out)
-    for profile in analysis.profiles:
-        _write_profile(analysis, profile, out)
+    for k, profile in enumerate(analysis.profiles):
+        _write_profile(analysis, k, profile, out)
     if analysis.swaps is not None:
         _write_swaps(analysis, out)
     if analysis.verdicts is not None and analysis.verdicts.cumulative is not None:
@@ -195,11 +191,11 @@ def _profile_name(profile):
     return "pmf-" + "-".join(profile.coordinates)
 
 
-def _write_profile(analysis, profile, out):
+def _write_profile(analysis, k, profile, out):
     unit, method = analysis.energy_unit, _method(analysis)
     labels = [_axis_label(n, _is_angle(analysis, n)) for n in profile.coordinates]
     grids = np.meshgrid(*profile.centres, indexing="ij")
-    verdicts = (analysis.verdicts.profiles[analysis.profiles.index(profile)] if analysis.verdicts is not None
+    verdicts = (analysis.verdicts.profiles[k] if analysis.verdicts is not None
                 else np.full(profile.f.shape, None, dtype=object))
     rows = [[_fmt(g[index], 5) for g in grids] + [_fmt(profile.f[index], 4), _fmt(profile.df[index], 4),
                                                    _fmt(profile.f_low[index], 4), _fmt(profile.f_high[index], 4),
@@ -243,10 +239,11 @@ def _uncertainty_summary(analysis):
     return result
 
 
-def _profile_counts(analysis, profile):
+def _profile_counts(analysis, k):
+    """Bins of profile k per verdict word (None without verdicts)."""
     if analysis.verdicts is None:
         return None
-    words = [v.word for v in np.ravel(analysis.verdicts.profiles[analysis.profiles.index(profile)]) if v is not None]
+    words = [v.word for v in np.ravel(analysis.verdicts.profiles[k]) if v is not None]
     return {w: words.count(w) for w in ("settled", "drifting", "too few samples")}
 
 
@@ -273,7 +270,7 @@ def _summary(analysis):
              "verdict": _verdict_json(_delta_g_verdict(analysis, i, j))}
             for i, a in enumerate(b.names) for j, c in enumerate(b.names) if i < j]
     result["profiles"] = [{"coordinates": list(p.coordinates), "file": _profile_name(p) + ".csv",
-                           "bins by verdict": _profile_counts(analysis, p)} for p in analysis.profiles]
+                           "bins by verdict": _profile_counts(analysis, k)} for k, p in enumerate(analysis.profiles)]
     if analysis.verdicts is not None and analysis.verdicts.acceptance:
         result["neighbour swaps"] = [{"conditions": [i, j], "acceptance": _number(a), "attempts": n,
                                       "verdict": _verdict_json(v)} for i, j, a, n, v in analysis.verdicts.acceptance]

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..convergence import Cumulative, compute_cumulative
-from ..diagnostics import neighbour_overlaps
+from ..diagnostics import neighbour_pairs_on_grid
 from ..verdict import TOO_FEW, Verdict, count_crossing_walkers, count_effective, judge
 from .errorbars import compute_statistics
 from .samples import basin_masks
@@ -161,9 +161,9 @@ def _basin_verdicts(basins, w_n, cumulative, inflation_s, layout, crossings, sca
 def _profile_verdicts(k, profile, bin_info, w_n, cumulative, inflation_s, layout, scale):
     bin_n, n_bins, zero = bin_info
     inside = bin_n >= 0
-    order = np.argsort(bin_n[inside], kind="stable")
-    groups = np.split(w_n[inside][order], np.cumsum(np.bincount(bin_n[inside], minlength=n_bins))[:-1])
-    effective_b = np.array([count_effective(g) for g in groups])
+    sum_b = np.bincount(bin_n[inside], weights=w_n[inside], minlength=n_bins)
+    with np.errstate(invalid="ignore"):      # Kish's count per bin, 0 where no weight
+        effective_b = np.nan_to_num(sum_b**2 / np.bincount(bin_n[inside], weights=w_n[inside]**2, minlength=n_bins))
     out = np.full(n_bins, None, dtype=object)
     f = np.ravel(profile.f)
     for b in np.flatnonzero(np.isfinite(f)):
@@ -182,15 +182,14 @@ def _acceptance_verdicts(data, protocol, production):
     ladder_shape = (len(protocol.temperatures), *[len(a.centres) for a in protocol.umbrella])
     rows = data.swaps[np.isin(data.swaps[:, 0], cycles)]
     out = []
-    for i, j, _ in neighbour_overlaps(np.zeros((protocol.n_windows * len(protocol.temperatures),) * 2), ladder_shape):
-        pair = rows[(rows[:, 1] == min(i, j)) & (rows[:, 2] == max(i, j))]
+    for i, j in neighbour_pairs_on_grid(ladder_shape):
+        pair = rows[(rows[:, 1] == i) & (rows[:, 2] == j)]
         halves = [pair[pair[:, 0] < middle], pair[pair[:, 0] >= middle]]
         estimates = [_rate(h[:, 3].sum(), h[:, 4].sum()) for h in halves]
         attempts, accepted = pair[:, 3].sum(), pair[:, 4].sum()
         verdict = judge(independent=min(accepted, attempts - accepted), first=estimates[0][0],
                         d_first=estimates[0][1], second=estimates[1][0], d_second=estimates[1][1])
-        out.append((int(min(i, j)), int(max(i, j)), accepted / attempts if attempts else np.nan, int(attempts),
-                    verdict))
+        out.append((i, j, accepted / attempts if attempts else np.nan, int(attempts), verdict))
     return tuple(out)
 
 

@@ -28,7 +28,7 @@ which a basin was never visited have no ΔG and are not analysed.
 
 Target: each enhanced method answers >= 10x sooner than plain MD.
 
-Run: python bench/p4_time_to_answer.py [--quick] [--prefixes 30] [--plain-prefixes 12] [--plain-cap S] [--skip-alanine]
+Run: python bench/p4_time_to_answer.py [--quick] [--prefixes 30] [--plain-prefixes 12] [--plain-cap S] [--skip-alanine] [--skip-double-well]
 """
 
 import argparse
@@ -402,6 +402,7 @@ def main():
     parser.add_argument("--prefixes", type=int, default=30, help="prefixes analysed per enhanced run")
     parser.add_argument("--plain-prefixes", type=int, default=12, help="prefixes analysed per plain MD run")
     parser.add_argument("--skip-alanine", action="store_true")
+    parser.add_argument("--skip-double-well", action="store_true")
     parser.add_argument("--plain-cap", type=float, help="most wall seconds per plain MD run "
                         f"(default {PLAIN_CAP_S['full']:g}, with --quick {PLAIN_CAP_S['quick']:g})")
     args = parser.parse_args()
@@ -415,7 +416,7 @@ def main():
           f"of its prefixes at most {args.analysis_timeout:g} s\n", flush=True)
     with benchlib.temporary_folder("p4") as tmp:
         tmp = Path(tmp)
-        verdicts = double_well(tmp, lengths, args)
+        verdicts = [] if args.skip_double_well else double_well(tmp, lengths, args)
         if not args.skip_alanine:
             verdicts += alanine(tmp, lengths, args)
     print("\nP4 summary")

@@ -28,7 +28,7 @@ from .exceptions import BoostWarning, InputError, RunFolderError
 from .protocol import PlatformSettings, parse_protocol
 from .provenance import read_protocol_at_commit
 from .spec import read_text
-from .store import LEDGER, LOCK, PROTOCOL, PROVENANCE, write_atomically
+from .store import LEDGER, PROTOCOL, PROVENANCE, write_atomically
 
 log = logging.getLogger("boost")
 
@@ -195,7 +195,7 @@ def _default_folder(source, kind, commit, original):
 
 
 def _check_fresh(folder):
-    if folder.exists() and (not folder.is_dir() or any(p.name != LOCK for p in folder.iterdir())):
+    if folder.exists() and (not folder.is_dir() or any(folder.iterdir())):
         raise RunFolderError(f"{folder}: already exists and is not empty; a repeat needs a new folder "
                              "(choose one with -o).")
 

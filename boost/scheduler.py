@@ -23,6 +23,7 @@ from .exchange import swap_any_pairs, swap_adjacent
 from .protocol import resolve_coordinates
 from .provenance import describe_environment, describe_git
 from .store import (LEDGER, PROTOCOL, PROVENANCE, FolderLock, FrameWriter, Ledger, check_folder_for,
+                    check_ledger_run_id, claim_folder,
                     read_checkpoint, recorded_last_cycle, write_atomically, write_checkpoint)
 from .systems import load_system
 from .workers import WalkerSetup, open_workers, rank_walkers
@@ -81,10 +82,9 @@ def _provenance(plan, seeds, swap_seed):
     }
 
 
-def _create_folder(folder, plan, seeds, swap_seed):
+def _create_folder(folder, plan, seeds, swap_seed, run_id):
     from openmm import app, unit
 
-    folder.mkdir(parents=True, exist_ok=True)
     write_atomically(folder / PROTOCOL, plan.protocol.text)
     write_atomically(folder / PROVENANCE, json.dumps(_provenance(plan, seeds, swap_seed), indent=2))
     with open(folder / "topology.pdb", "w") as handle:
@@ -97,7 +97,7 @@ def _create_folder(folder, plan, seeds, swap_seed):
         "umbrella": list(plan.umbrella_names), "n_walkers": plan.n_walkers,
         "temperature": plan.protocol.temperature, "pressure": plan.protocol.pressure,
         "timestep_ps": plan.protocol.timestep, "steps_per_cycle": plan.protocol.run.steps_per_cycle,
-        "protocol_sha256": plan.protocol.sha256,
+        "protocol_sha256": plan.protocol.sha256, "run_id": run_id,
     })
     return ledger
 
@@ -124,7 +124,7 @@ class Scheduler:
     def run(self):
         """Run to the end; returns the folder. Resumes a partial run of the same protocol."""
         check_folder_for(self.folder, self.plan.protocol.text)
-        self.folder.mkdir(parents=True, exist_ok=True)
+        self.run_id = claim_folder(self.folder)        # before the lock file: a foreign 'lock' is never opened
         lock = FolderLock(self.folder)
         stale = lock.acquire()
         try:
@@ -132,6 +132,8 @@ class Scheduler:
                 log.info("taking over the run folder from %s, which is no longer running", stale)
             resume = check_folder_for(self.folder, self.plan.protocol.text) == "same" \
                 and (self.folder / LEDGER).exists()
+            if resume:
+                check_ledger_run_id(self.folder, self.run_id)
             with _disk_errors(self.folder):
                 self._run(resume)
         finally:
@@ -149,7 +151,7 @@ class Scheduler:
             plan = self.plan = _with_recorded_platform(plan, self.folder)
             ledger = Ledger(self.folder / LEDGER, coordinate_names=tuple(plan.coordinates))
         else:
-            ledger = _create_folder(self.folder, plan, self.seeds, self.swap_seed)
+            ledger = _create_folder(self.folder, plan, self.seeds, self.swap_seed, self.run_id)
         workers = open_workers(self._walker_setup(), self.worker_count, self.comm, self.cores)
         frames = None
         try:

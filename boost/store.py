@@ -3,6 +3,7 @@
 Layout::
 
     RUN/
+      boost-run.json    identity: a random run id (also in the ledger); marks the folder as boost's
       protocol.yaml     the protocol text, byte for byte
       provenance.json   protocol hash, seeds, platform, package versions, host, times
       ledger.sqlite     one transaction per cycle (see below)
@@ -21,6 +22,7 @@ import hashlib
 import itertools
 import json
 import os
+import secrets
 import sqlite3
 import struct
 from dataclasses import dataclass
@@ -35,6 +37,10 @@ LEDGER = "ledger.sqlite"
 LOCK = "lock"
 PROTOCOL = "protocol.yaml"
 PROVENANCE = "provenance.json"
+IDENTITY = "boost-run.json"
+#: Every top-level entry boost writes into a run folder (SQLite may add its journal files).
+OWN_ENTRIES = frozenset({IDENTITY, PROTOCOL, PROVENANCE, LEDGER, LOCK, "topology.pdb", "frames", "checkpoints",
+                         "analysis", LEDGER + "-journal", LEDGER + "-wal", LEDGER + "-shm"})
 
 
 def write_atomically(path, data):
@@ -54,21 +60,93 @@ def protocol_hash(text):
 
 
 def check_folder_for(path, protocol_text):
-    """Return 'new', 'same' (a run of this very protocol) or raise for a foreign folder."""
+    """Return 'new' (absent, empty, or ours and not started) or 'same' (ours, this very protocol).
+
+    A folder counts as boost's only by the identity file boost wrote into it; one without
+    it must be empty, and one with it may hold only entries boost writes. Anything else is
+    refused before a byte is written, so no user file is ever replaced.
+    """
     path = Path(path)
     if not path.exists():
         return "new"
     if not path.is_dir():
         raise RunFolderError(f"{path}: is a file, not a run folder.")
+    entries = sorted(entry.name for entry in path.iterdir())
+    if IDENTITY not in entries:
+        if not entries:
+            return "new"
+        if PROTOCOL in entries and LEDGER in entries:
+            raise RunFolderError(f"{path}: has no {IDENTITY} (a run folder of an older boost, or copied without it); "
+                                 "boost only writes into folders it created: choose another folder.")
+        raise RunFolderError(f"{path}: holds {_quoted(entries[0])}, which boost did not write; a run needs a new "
+                             "or empty folder: choose another folder.")
+    read_run_id(path)
+    foreign = [name for name in entries if name not in OWN_ENTRIES and not _is_own_partial(name)]
+    if foreign:
+        raise RunFolderError(f"{path}: holds {_quoted(foreign[0])}, which boost did not write; move it out of the "
+                             "run folder or choose another folder.")
     copy = path / PROTOCOL
     if not copy.exists():
-        if any(entry.name != LOCK for entry in path.iterdir()):
-            raise RunFolderError(f"{path}: is not empty and is not a run folder; choose another folder.")
         return "new"
-    if protocol_hash(copy.read_text(encoding="utf-8")) != protocol_hash(protocol_text):
+    if protocol_hash(copy.read_text(encoding="utf-8", errors="replace")) != protocol_hash(protocol_text):
         raise RunFolderError(f"{path}: belongs to another protocol (its {PROTOCOL} differs); "
                              "choose another folder or remove it.")
     return "same"
+
+
+def claim_folder(path):
+    """Create ``path`` if needed and its identity file, unless it has one; returns the run id."""
+    path = Path(path)
+    path.mkdir(parents=True, exist_ok=True)
+    identity = path / IDENTITY
+    if identity.exists():
+        return read_run_id(path)
+    run_id = secrets.token_hex(16)
+    fd = os.open(identity, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)   # never replaces a file
+    with os.fdopen(fd, "w") as handle:
+        handle.write(json.dumps({"run_id": run_id, "written_by": "boost"}) + "\n")
+        handle.flush()
+        os.fsync(handle.fileno())
+    return run_id
+
+
+def read_run_id(path):
+    """The run id in a folder's identity file; RunFolderError when it is damaged."""
+    identity = Path(path) / IDENTITY
+    try:
+        run_id = json.loads(identity.read_bytes().decode())["run_id"]
+    except (OSError, UnicodeDecodeError, ValueError, KeyError, TypeError):
+        raise RunFolderError(f"{identity}: is damaged (expected a JSON object with a run_id); "
+                             "this folder cannot be trusted as a run folder.") from None
+    if not (isinstance(run_id, str) and len(run_id) == 32 and all(c in "0123456789abcdef" for c in run_id)):
+        raise RunFolderError(f"{identity}: is damaged (its run_id is not 32 hex digits).")
+    return run_id
+
+
+def check_ledger_run_id(path, run_id):
+    """Refuse a ledger that another run wrote (copied in, or the identity file replaced)."""
+    connection = sqlite3.connect(f"file:{Path(path) / LEDGER}?mode=ro", uri=True)
+    try:
+        row = connection.execute("SELECT value FROM meta WHERE key = 'run_id'").fetchone()
+        recorded = json.loads(row[0]) if row else None
+    except (sqlite3.DatabaseError, ValueError, TypeError):
+        raise RunFolderError(f"{Path(path) / LEDGER}: is damaged (its run id cannot be read); "
+                             "start a new run folder.") from None
+    finally:
+        connection.close()
+    if recorded != run_id:
+        raise RunFolderError(f"{Path(path) / LEDGER}: was not written by this run (its run id differs from "
+                             f"{IDENTITY}'s); resume only the folder a run created.")
+
+
+def _is_own_partial(name):
+    return name.endswith(".partial") and name[: -len(".partial")] in OWN_ENTRIES
+
+
+def _quoted(name):
+    """A file name fit for a one-line message: escaped, and cut short when long."""
+    text = repr(name)
+    return text if len(text) <= 60 else text[:57] + "..."
 
 
 class Ledger:

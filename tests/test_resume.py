@@ -15,7 +15,7 @@ from boost.analysis import analyse_run
 from boost.exceptions import RunFolderError, SimulationError
 from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
-from boost.store import FolderLock, read_ledger
+from boost.store import FolderLock, claim_folder, read_ledger
 
 # Two walkers that swap temperatures: resume must restore contexts, assignment and swap RNG.
 TEMPERING = """\
@@ -120,7 +120,7 @@ def test_many_kills_then_resume_is_bit_for_bit(tmp_path, reference):
 
 def test_second_writer_is_refused_naming_the_holder(tmp_path):
     folder = tmp_path / "run"
-    folder.mkdir()
+    claim_folder(folder)
     holder = FolderLock(folder)
     holder.acquire()
     try:
@@ -129,12 +129,12 @@ def test_second_writer_is_refused_naming_the_holder(tmp_path):
             run_protocol(load_protocol(tmp_path / "p.yaml"), folder, progress=False)
     finally:
         holder.release()
-    assert sorted(p.name for p in folder.iterdir()) == ["lock"]     # nothing else written
+    assert sorted(p.name for p in folder.iterdir()) == ["boost-run.json", "lock"]     # nothing else written
 
 
 def test_stale_lock_of_a_dead_process_is_taken_over(tmp_path, caplog):
     folder = tmp_path / "run"
-    folder.mkdir()
+    claim_folder(folder)
     (folder / "lock").write_text("process 999999 on elsewhere")   # no flock held: its process is gone
     (tmp_path / "p.yaml").write_text(TEMPERING.replace("production: 40 ps", "production: 1 ps"))
     with caplog.at_level("INFO", logger="boost"):

@@ -72,25 +72,37 @@ def _walker_inefficiency(data, protocol, cycles):
 
     Per walker, whatever condition it holds: its reduced potential in that condition, the
     watched coordinates (umbrella, basin and PMF coordinates) and each basin's indicator.
-    These carry the correlation a walker takes from one condition to the next.
+    These carry the correlation a walker takes from one condition to the next. Each is
+    taken relative to its mean in the condition held: otherwise a walker's slow drift
+    along a window ladder (its coordinate follows the window it holds) would pass for a
+    correlation of the samples, and blocks would come out as long as a round trip.
     """
     watched = ({a.coordinate for a in protocol.umbrella} | {c for b in protocol.basins.values() for c in b}
                | {b.coordinate for b in protocol.analysis.bins})
     names, periodic = list(data.coordinate_names), data.metadata["periodic"]
+    n_walkers = data.condition_rt.shape[0]
     times = np.arange(cycles.size)
-    g = 1.0
-    for r in range(data.condition_rt.shape[0]):
+    k_rt = data.condition_rt[:, cycles]
+    series_rt = {}          # observable -> (walkers, cycles)
+    for r in range(n_walkers):
         walker_t = np.full(cycles.size, r)
         u_kt = compute_sample_reduced_potentials(data, protocol, data.conditions, walker_t, cycles)
-        series = [u_kt[data.condition_rt[r, cycles], times]]
+        row = [u_kt[k_rt[r], times]]
         values_tc = data.values_rtc[r, cycles]
         for c, name in enumerate(names):
             if name in watched:
                 x = values_tc[:, c]
-                series += [np.cos(x), np.sin(x)] if periodic[c] else [x]
-        series += [mask.astype(float) for mask in basin_masks(protocol, names, periodic, values_tc).values()]
-        for s in series:
-            if np.ptp(s) > 0:
+                row += [np.cos(x), np.sin(x)] if periodic[c] else [x]
+        row += [mask.astype(float) for mask in basin_masks(protocol, names, periodic, values_tc).values()]
+        for i, s in enumerate(row):
+            series_rt.setdefault(i, np.empty((n_walkers, cycles.size)))[r] = s
+    g = 1.0
+    n_conditions = int(k_rt.max()) + 1
+    counts = np.bincount(k_rt.ravel(), minlength=n_conditions)
+    for s_rt in series_rt.values():
+        mean_k = np.bincount(k_rt.ravel(), weights=s_rt.ravel(), minlength=n_conditions) / np.maximum(counts, 1)
+        for s in s_rt - mean_k[k_rt]:
+            if np.ptp(s) > 1e-12 * max(1.0, np.abs(s).max()):
                 g = max(g, compute_statistical_inefficiency(s))
     return g
 

@@ -83,7 +83,7 @@ def _walker_inefficiency(data, protocol, cycles):
     n_walkers = data.condition_rt.shape[0]
     times = np.arange(cycles.size)
     k_rt = data.condition_rt[:, cycles]
-    series_rt = {}          # observable -> (walkers, cycles)
+    series_rt = None        # observable -> (walkers, cycles), sized from the first walker's rows
     for r in range(n_walkers):
         walker_t = np.full(cycles.size, r)
         u_kt = compute_sample_reduced_potentials(data, protocol, data.conditions, walker_t, cycles)
@@ -94,12 +94,13 @@ def _walker_inefficiency(data, protocol, cycles):
                 x = values_tc[:, c]
                 row += [np.cos(x), np.sin(x)] if periodic[c] else [x]
         row += [mask.astype(float) for mask in basin_masks(protocol, names, periodic, values_tc).values()]
-        for i, s in enumerate(row):
-            series_rt.setdefault(i, np.empty((n_walkers, cycles.size)))[r] = s
+        if series_rt is None:
+            series_rt = np.empty((len(row), n_walkers, cycles.size))
+        series_rt[:, r] = row
     g = 1.0
     n_conditions = int(k_rt.max()) + 1
     counts = np.bincount(k_rt.ravel(), minlength=n_conditions)
-    for s_rt in series_rt.values():
+    for s_rt in series_rt:
         mean_k = np.bincount(k_rt.ravel(), weights=s_rt.ravel(), minlength=n_conditions) / np.maximum(counts, 1)
         for s in s_rt - mean_k[k_rt]:
             if np.ptp(s) > 1e-12 * max(1.0, np.abs(s).max()):

@@ -165,24 +165,19 @@ def write_ledger(folder, text, x_rt, potential_rt, record_cycles):
 
 
 def _insert_bulk(ledger, conditions, x_rt, potential_rt, first, stop, cycle_time, n_umbrella):
-    """Cycles first..stop-1 in one transaction, in the row form of Ledger.record_cycle."""
+    """Cycles first..stop-1 in one transaction (Ledger.record_cycles, checksums included)."""
     from boost.conditions import compute_reduced_potentials
 
     n_walkers = x_rt.shape[0]
-    cycles = range(first, stop)
     x_n = x_rt[:, first:stop].T.ravel()
     potential_n = potential_rt[:, first:stop].T.ravel()
-    u_nk = compute_reduced_potentials(conditions, potential_n, x_n[:, None][:, :n_umbrella],
-                                      [False] * n_umbrella).T.astype("<f8")
-    blobs = [row.tobytes() for row in u_nk]
-    walker_n = np.tile(np.arange(n_walkers), stop - first)
-    cycle_n = np.repeat(np.arange(first, stop), n_walkers)
-    rows = zip(cycle_n.tolist(), walker_n.tolist(), walker_n.tolist(), potential_n.tolist(),
-               [None] * len(x_n), x_n.tolist(), blobs)
-    with ledger.connection:
-        ledger.connection.executemany("INSERT INTO cycles VALUES (?, ?, ?)",
-                                      [(t, (t + 1) * cycle_time, 1) for t in cycles])
-        ledger.connection.executemany("INSERT INTO samples VALUES (?, ?, ?, ?, ?, ?, ?)", rows)
+    u_kn = compute_reduced_potentials(conditions, potential_n, x_n[:, None][:, :n_umbrella], [False] * n_umbrella)
+    n_cycles = stop - first
+    ledger.record_cycles(
+        first, time_t=(np.arange(first, stop) + 1) * cycle_time, production_t=np.ones(n_cycles, dtype=bool),
+        condition_rt=np.repeat(np.arange(n_walkers)[:, None], n_cycles, axis=1),
+        potential_rt=potential_rt[:, first:stop], volume_rt=np.full((n_walkers, n_cycles), np.nan),
+        values_rtc=x_rt[:, first:stop, None], u_krt=u_kn.reshape(len(conditions), n_cycles, n_walkers).transpose(0, 2, 1))
 
 
 def single_walker_values(n_cycles, rng):

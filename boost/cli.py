@@ -134,11 +134,14 @@ def analyze(run_folder, temperature, energy_unit, output, memory):
     from .analysis import analyse_run
     from .exceptions import BoostWarning, ProtocolError, RunFolderError
     from .protocol import MIN_ANALYSIS_MEMORY
-    from .report import format_summary, write_report
+    from .report import claim_output_folder, format_summary, write_report
+    from .store import LEDGER
     from .units import parse_quantity
 
     if not run_folder.is_dir():
         raise RunFolderError(f"{run_folder}: no such run folder.")
+    if not (run_folder / LEDGER).is_file():
+        raise RunFolderError(f"{run_folder}: is not a run folder (no {LEDGER}).")
     target = None
     if temperature is not None:
         target = parse_quantity(temperature, "temperature", place="--temperature")
@@ -147,6 +150,7 @@ def analyze(run_folder, temperature, energy_unit, output, memory):
         memory_bytes = parse_quantity(memory, "memory", place="--memory")
         if memory_bytes < MIN_ANALYSIS_MEMORY:
             raise ProtocolError(f"--memory must be at least {MIN_ANALYSIS_MEMORY // 2**20} MiB. Got {memory!r} instead.")
+    output = claim_output_folder(output or run_folder / "analysis")     # before hours of work, not after
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", BoostWarning)
         analysis = analyse_run(run_folder, temperature=target, energy_unit=energy_unit, memory=memory_bytes)

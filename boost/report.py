@@ -10,6 +10,8 @@ from pathlib import Path
 
 import numpy as np
 
+from .exceptions import RunFolderError
+
 
 def _fmt(value, digits=3):
     return "nan" if value is None or not np.isfinite(value) else f"{value:.{digits}f}"
@@ -132,10 +134,41 @@ def _bound_notes(basins):
     return notes
 
 
+#: Every file boost analyze writes; an output folder may hold nothing else (pmf-*.csv/png aside).
+OUTPUT_FILES = frozenset({"summary.json", "conditions.csv", "overlap.csv", "basins.csv",
+                          "free-energy-differences.csv", "swap-acceptance.csv", "round-trips.csv",
+                          "neighbour-swaps.csv", "convergence.csv", "windows.png", "walker-traces.png",
+                          "swap-acceptance.png", "convergence.png"})
+
+
+def claim_output_folder(out):
+    """Make ``out`` (new, empty, or holding only files boost analyze writes) ready for writing.
+
+    A folder with anything else in it is refused with one line, so no file of the user's is
+    ever replaced by a table or plot.
+    """
+    out = Path(out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        foreign = sorted(p.name for p in out.iterdir()
+                         if p.name not in OUTPUT_FILES and not _is_profile_file(p.name) or not p.is_file())
+    except OSError as err:
+        raise RunFolderError(f"{out}: cannot be used for the analysis output ({err.strerror or err}); "
+                             "choose a folder you can write to.") from None
+    if foreign:
+        name = repr(foreign[0]) if len(repr(foreign[0])) <= 60 else repr(foreign[0])[:57] + "..."
+        raise RunFolderError(f"{out}: holds {name}, which boost analyze did not write; choose a new or empty "
+                             "folder for the tables and plots.")
+    return out
+
+
+def _is_profile_file(name):
+    return name.startswith("pmf-") and name.endswith((".csv", ".png"))
+
+
 def write_report(analysis, folder=None):
     """Write CSV/JSON tables and PNG plots; return the folder they are in."""
-    out = Path(folder or Path(analysis.folder) / "analysis")
-    out.mkdir(parents=True, exist_ok=True)
+    out = claim_output_folder(folder or Path(analysis.folder) / "analysis")
     _write_conditions(analysis, out)
     if analysis.basins is not None:
         _write_basins(analysis, out)

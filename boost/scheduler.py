@@ -23,8 +23,8 @@ from .exchange import swap_any_pairs, swap_adjacent
 from .protocol import resolve_coordinates
 from .provenance import describe_environment, describe_git
 from .store import (LEDGER, PROTOCOL, PROVENANCE, FolderLock, FrameWriter, Ledger, check_folder_for,
-                    check_ledger_run_id, claim_folder,
-                    read_checkpoint, recorded_last_cycle, write_atomically, write_checkpoint)
+                    choose_checkpoint, claim_folder, dcd_frame_bytes, has_checkpoint, inspect_frames, scan_ledger,
+                    write_atomically, write_checkpoint)
 from .systems import load_system
 from .workers import WalkerSetup, open_workers, rank_walkers
 
@@ -97,9 +97,15 @@ def _create_folder(folder, plan, seeds, swap_seed, run_id):
         "umbrella": list(plan.umbrella_names), "n_walkers": plan.n_walkers,
         "temperature": plan.protocol.temperature, "pressure": plan.protocol.pressure,
         "timestep_ps": plan.protocol.timestep, "steps_per_cycle": plan.protocol.run.steps_per_cycle,
-        "protocol_sha256": plan.protocol.sha256, "run_id": run_id,
+        "protocol_sha256": plan.protocol.sha256, "protocol_text": plan.protocol.text, "run_id": run_id,
+        "frame_atoms": plan.built.topology.getNumAtoms(), "frame_bytes": _frame_bytes(plan),
     })
     return ledger
+
+
+def _frame_bytes(plan):
+    topology = plan.built.topology
+    return dcd_frame_bytes(topology.getNumAtoms(), topology.getPeriodicBoxVectors() is not None)
 
 
 class Scheduler:
@@ -132,8 +138,6 @@ class Scheduler:
                 log.info("taking over the run folder from %s, which is no longer running", stale)
             resume = check_folder_for(self.folder, self.plan.protocol.text) == "same" \
                 and (self.folder / LEDGER).exists()
-            if resume:
-                check_ledger_run_id(self.folder, self.run_id)
             with _disk_errors(self.folder):
                 self._run(resume)
         finally:
@@ -142,9 +146,8 @@ class Scheduler:
 
     def _run(self, resume):
         plan, protocol = self.plan, self.plan.protocol
-        state = read_checkpoint(self.folder) if resume else None
-        if state is not None and state[0] >= protocol.run.n_cycles - 1 \
-                and recorded_last_cycle(self.folder) >= state[0]:
+        state = self._resume_point() if resume else None
+        if state == "complete":
             log.info("%s: the run is already complete", self.folder)
             return
         if resume:
@@ -160,13 +163,56 @@ class Scheduler:
                 frames = FrameWriter(self.folder, plan.built.topology, plan.n_walkers,
                                      timestep_ps=protocol.timestep,
                                      steps_between=protocol.run.frame_every * protocol.run.steps_per_cycle,
-                                     counts=ledger.frame_counts(plan.n_walkers))
+                                     counts=self._frames_on_disk(ledger))
             self._loop(workers, ledger, frames, rng, start, assignment)
         finally:
             workers.close()
             ledger.close()
             if frames:
                 frames.close()
+
+    def _resume_point(self):
+        """Verify the folder before resuming: 'complete', None (start afresh: nothing
+        recorded) or the newest intact checkpoint at or before the ledger's last intact cycle."""
+        n_recorded, first_bad, metadata = scan_ledger(self.folder)
+        if metadata.get("run_id") != self.run_id:
+            raise RunFolderError(f"{self.folder / LEDGER}: was not written by this run (its run id differs from "
+                                 "the identity file's); resume only the folder a run created.")
+        if metadata.get("protocol_sha256") != self.plan.protocol.sha256:
+            raise RunFolderError(f"{self.folder / LEDGER}: was recorded for another protocol (the folder's "
+                                 f"{PROTOCOL} was edited after the run started); choose another folder.")
+        if first_bad is None and n_recorded >= self.plan.protocol.run.n_cycles:
+            return "complete"
+        if n_recorded == 0 and not has_checkpoint(self.folder):
+            return None
+        last_intact = (n_recorded if first_bad is None else first_bad) - 1
+        try:
+            checkpoint, notes = choose_checkpoint(self.folder, run_id=self.run_id, last_intact_cycle=last_intact)
+        except RunFolderError:
+            if first_bad is None:
+                raise
+            raise RunFolderError(f"{self.folder / LEDGER}: cycle {first_bad} is damaged (its records fail their "
+                                 "checksum) and no intact checkpoint comes before it; this run cannot be "
+                                 "continued: start a new run folder.") from None
+        if first_bad is not None:
+            notes.insert(0, f"{LEDGER}: cycle {first_bad} is damaged")
+        for note in notes:
+            log.warning("warning: %s; resuming from checkpoints/%s (after cycle %d), the cycles after it are "
+                        "computed again", note, checkpoint.name, checkpoint.cycle)
+        return checkpoint
+
+    def _frames_on_disk(self, ledger):
+        """Frames to keep per walker: the ledger's records, cut to what is intact on disk."""
+        records = ledger.frame_records(self.plan.n_walkers)
+        counts = []
+        for check in inspect_frames(self.folder, records, _frame_bytes(self.plan),
+                                    self.plan.built.topology.getNumAtoms()):
+            if check.problem:
+                log.warning("warning: %s; frames go on from frame %d", check.problem, check.usable)
+            if check.usable < check.recorded:
+                ledger.forget_frames_from(check.walker, check.usable)
+            counts.append(check.usable)
+        return counts
 
     def _walker_setup(self):
         import openmm
@@ -188,16 +234,15 @@ class Scheduler:
             assignment, rng = list(range(self.plan.n_walkers)), np.random.default_rng(self.swap_seed)
             self._checkpoint(workers, -1, assignment, rng)
             return 0, assignment, rng
-        cycle, scheduler_state, walker_states = state
-        ledger.truncate_after(cycle)
-        assignment = list(scheduler_state["assignment"])
-        workers.restore(walker_states, assignment)
+        ledger.truncate_after(state.cycle)
+        assignment = list(state.scheduler["assignment"])
+        workers.restore(state.walker_states, assignment)
         rng = np.random.default_rng(self.swap_seed)
-        rng.bit_generator.state = scheduler_state["rng"]
-        return cycle + 1, assignment, rng
+        rng.bit_generator.state = state.scheduler["rng"]
+        return state.cycle + 1, assignment, rng
 
     def _checkpoint(self, workers, cycle, assignment, rng):
-        write_checkpoint(self.folder, cycle=cycle, walker_states=workers.checkpoints(),
+        write_checkpoint(self.folder, cycle=cycle, walker_states=workers.checkpoints(), run_id=self.run_id,
                          scheduler_state={"assignment": list(assignment), "rng": rng.bit_generator.state})
 
     def _loop(self, workers, ledger, frames, rng, start, assignment):
@@ -217,7 +262,7 @@ class Scheduler:
                     bar.n = cycle
                     continue
                 new_assignment, tally = self._swap(u_kr, assignment, cycle, rng)
-                written = [(r, frames.write(r, o.positions, o.box_vectors)) for r, o in enumerate(reports)] \
+                written = [(r, *frames.write(r, o.positions, o.box_vectors)) for r, o in enumerate(reports)] \
                     if framing else []
                 ledger.record_cycle(
                     cycle, time=(cycle + 1) * cycle_ps, production=cycle >= run.equilibration_cycles,
@@ -237,14 +282,16 @@ class Scheduler:
             raise SimulationError(f"{err} The run folder holds every cycle before it and can be resumed; "
                                   "try a smaller timestep, minimisation, or run.retries.") from None
         self.retries_left -= 1
-        state = read_checkpoint(self.folder)
+        state, notes = choose_checkpoint(self.folder, run_id=self.run_id, last_intact_cycle=cycle - 1)
+        for note in notes:
+            log.warning("warning: %s; going back to checkpoints/%s", note, state.name)
         start, assignment, rng = self._restore(workers, ledger, state)
         seed = int(np.random.default_rng([self.plan.protocol.seed, cycle, self.retries_left]).integers(1, 2**30))
         walker = getattr(err, "walker", None)
         workers.draw_velocities({r: seed + r for r in range(self.plan.n_walkers) if walker in (None, r)})
         ledger.record_retry(cycle, -1 if walker is None else walker, seed)
         if frames:
-            frames.cut_back(ledger.frame_counts(self.plan.n_walkers))
+            frames.cut_back([len(crcs) for crcs in ledger.frame_records(self.plan.n_walkers)])
         log.warning("%s; retrying from cycle %d with fresh velocities (%d retries left)", err, start,
                     self.retries_left)
         return start, assignment, rng
@@ -285,9 +332,14 @@ class WalkerBlowUp(SimulationError):
 
 def _with_recorded_platform(plan, folder):
     """Resume on the platform the run started on, so a deterministic run stays bit-for-bit."""
-    provenance = json.loads((Path(folder) / PROVENANCE).read_text())
-    recorded = PlatformChoice(provenance["platform"], provenance["platform_properties"],
-                              tuple(tuple(item) for item in provenance.get("platform_probe", ())))
+    path = Path(folder) / PROVENANCE
+    try:
+        provenance = json.loads(path.read_bytes())
+        recorded = PlatformChoice(provenance["platform"], provenance["platform_properties"],
+                                  tuple(tuple(item) for item in provenance.get("platform_probe", ())))
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        raise RunFolderError(f"{path}: is missing or damaged; it records the platform the run started on, which "
+                             "a resume must use: restore it, or start a new run folder.") from None
     return replace(plan, platform=recorded)
 
 
@@ -302,6 +354,9 @@ def _disk_errors(folder):
         reason = getattr(err, "strerror", None) or str(err)
         raise RunFolderError(f"{folder}: cannot write ({reason}); the ledger keeps every complete cycle. "
                              "Free space or fix permissions, then run again to resume.") from None
+    except sqlite3.DatabaseError:
+        raise RunFolderError(f"{Path(folder) / LEDGER}: is damaged (SQLite cannot use it); "
+                             "start a new run folder.") from None
 
 
 def run_protocol(protocol, folder, *, platform=None, progress=True, workers=None):

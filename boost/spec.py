@@ -224,3 +224,18 @@ def _example(dimension):
 
 
 _show = show_value
+
+
+def differing_paths(a, b, prefix=""):
+    """Key paths (``run.production``) at which two parsed YAML trees differ, in document order."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        paths = []
+        for key in list(a) + [k for k in b if k not in a]:
+            child = f"{prefix}.{key}" if prefix else str(key)
+            if key not in a or key not in b:
+                paths.append(child)
+            else:
+                paths += differing_paths(a[key], b[key], child)
+        return paths
+    same = type(a) is type(b) and a == b
+    return [] if same else [prefix or "(the whole document)"]

@@ -93,3 +93,30 @@ def test_a_long_or_odd_foreign_name_is_quoted_short_and_escaped(tmp_path):
     result = boost("run", "small.yaml", "-o", "target", "--quiet", cwd=tmp_path)
     assert_one_line_error(result, r"holds 'a\\x1b\[31mxxx")
     assert "\x1b" not in result.stderr and len(result.stderr) < 300
+
+
+def test_analysis_output_never_replaces_a_user_file(tmp_path):
+    (tmp_path / "small.yaml").write_text(SHORT)
+    assert boost("run", "small.yaml", "-o", "run", "--quiet", cwd=tmp_path).returncode == 0
+    mine = tmp_path / "mine"
+    mine.mkdir()
+    (mine / "summary.json").write_text("my own summary\n")          # a name boost analyze also writes
+    (mine / "notes.txt").write_text("my notes\n")
+    before = snapshot(mine)
+    assert_one_line_error(boost("analyze", "run", "--output", "mine", cwd=tmp_path),
+                          r"mine: holds 'notes\.txt', which boost analyze did not write")
+    assert snapshot(mine) == before
+    for place in ("/proc/boost-analysis", "/sys/boost-analysis"):
+        assert_one_line_error(boost("analyze", "run", "--output", place, cwd=tmp_path),
+                              r"cannot be used for the analysis output")
+    first = boost("analyze", "run", cwd=tmp_path)                      # its own folder, twice
+    assert first.returncode == 0, first.stderr
+    assert boost("analyze", "run", cwd=tmp_path).returncode == 0
+
+
+def test_analyze_of_a_folder_that_is_not_a_run_leaves_it_alone(tmp_path):
+    mine = tmp_path / "mine"
+    mine.mkdir()
+    (mine / "notes.txt").write_text("my notes\n")
+    assert_one_line_error(boost("analyze", "mine", cwd=tmp_path), r"mine: is not a run folder \(no ledger\.sqlite\)")
+    assert snapshot(mine) == {Path("notes.txt"): b"my notes\n"}

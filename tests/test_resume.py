@@ -241,13 +241,13 @@ def test_read_only_folder_gives_one_clear_error(tmp_path, monkeypatch):
     # lowest write boundary boost uses (os.replace of an atomic write)
     import errno
 
-    from boost import store
+    from boost.store import folder as run_folder
 
     def read_only(*args, **kwargs):
         raise OSError(errno.EROFS, "Read-only file system")
 
     (tmp_path / "p.yaml").write_text(TEMPERING)
-    monkeypatch.setattr(store.os, "replace", read_only)
+    monkeypatch.setattr(run_folder.os, "replace", read_only)
     with pytest.raises(RunFolderError, match=r"run: cannot write \(Read-only file system\)"):
         run_protocol(load_protocol(tmp_path / "p.yaml"), tmp_path / "run", progress=False)
 

@@ -20,7 +20,7 @@ import pytest
 from scipy.integrate import IntegrationWarning
 
 from boost.analysis import analyse_run
-from boost.exceptions import (AnalysisError, BoostWarning, ConvergenceWarning, InputError, ProtocolError,
+from boost.exceptions import (AnalysisError, BoostWarning, ConvergenceWarning, ProtocolError,
                               RunFolderError)
 from boost.models import read_model
 from boost.protocol import load_protocol
@@ -406,7 +406,7 @@ def test_a_folder_that_is_not_a_run_folder_is_refused(tmp_path):
     damaged = tmp_path / "damaged"
     damaged.mkdir()
     (damaged / "ledger.sqlite").write_bytes(b"this is no SQLite file" * 20)
-    with pytest.raises(RunFolderError, match="cannot be read as a ledger"):
+    with pytest.raises(RunFolderError, match="is damaged or not a ledger"):
         analyse_run(damaged)
 
 
@@ -446,11 +446,12 @@ def test_overlapping_basins_name_both(tmp_path, small_ladder):
         analyse_run(folder)
 
 
-def test_a_run_folder_without_its_protocol_copy_is_refused(tmp_path, small_ladder):
+def test_a_run_folder_without_its_protocol_copy_is_analysed_from_the_ledger(tmp_path, small_ladder):
     folder = shutil.copytree(small_ladder[1], tmp_path / "damaged-run")
     (folder / "protocol.yaml").unlink()
-    with pytest.raises(InputError, match=r"protocol\.yaml: protocol copy file not found"):
-        analyse_run(folder)
+    with pytest.warns(BoostWarning, match=r"protocol\.yaml: is missing; the protocol text recorded in the ledger"):
+        missing = analyse_run(folder)
+    assert np.array_equal(missing.f_k, analyse_run(small_ladder[1]).f_k)
 
 
 def test_target_temperature_outside_the_ladder(small_ladder):

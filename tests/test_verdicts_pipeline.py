@@ -114,6 +114,7 @@ def test_a_run_still_going_gets_verdicts_from_what_is_there(ladder, tmp_path):
     # as `boost analyze` sees a run in progress: the ledger cut back to its first cycles
     folder = tmp_path / "partial"
     shutil.copytree(ladder, folder)
+    shutil.rmtree(folder / "checkpoints")      # the finished run's are past cycle 299
     ledger = Ledger(folder / LEDGER)
     ledger.truncate_after(99 + 200)             # 100 equilibration cycles, then 200 of 1500
     ledger.close()

@@ -20,10 +20,11 @@ from ..reweight import Reweighting
 from ..units import energy_in
 from .errorbars import compute_bootstrap_errors, uses_bootstrap
 from .estimates import compute_basin_results, compute_profiles, population_interval
+from .inputs import load_run
 from .results import Analysis, BasinResult, ProfileResult, Uncertainty
 from .verdicts import Verdicts, compute_verdicts
 from .samples import (MBAR_COPIES, MBAR_SHARE, MIN_SAMPLES, basin_masks, compute_sample_reduced_potentials,
-                      condition_labels, gather, load_run, select_samples, thinning_stride, window_values)
+                      condition_labels, gather, select_samples, thinning_stride, window_values)
 
 __all__ = ["Analysis", "BasinResult", "ProfileResult", "Uncertainty", "Verdicts", "analyse_run", "basin_masks",
            "compute_sample_reduced_potentials", "condition_labels", "load_run", "population_interval",

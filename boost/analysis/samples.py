@@ -3,28 +3,16 @@ subsampled by statistical inefficiency, thinned to fit analysis.memory."""
 
 import math
 import warnings
-from pathlib import Path
 
 import numpy as np
 
 from ..conditions import compute_reduced_potentials
 from ..correlation import compute_statistical_inefficiency
 from ..exceptions import AnalysisError, BoostWarning
-from ..protocol import parse_protocol
 from ..reweight import decorrelate
-from ..spec import read_text
-from ..store import PROTOCOL, read_ledger
 
 #: Fewest samples per condition (after subsampling) the analysis accepts.
 MIN_SAMPLES = 5
-
-
-def load_run(folder):
-    """The protocol copy and ledger of a run folder."""
-    data = read_ledger(folder, reduced=False)
-    path = Path(folder) / PROTOCOL
-    protocol = parse_protocol(read_text(path, "protocol copy"), path)
-    return protocol, data
 
 
 def window_values(data, protocol):

@@ -61,7 +61,7 @@ def _platform_override(protocol, name, threads):
 
 
 @main.command()
-@click.argument("protocol_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("protocol_file", type=click.Path(path_type=Path))   # read_text explains a folder in one line
 def check(protocol_file):
     """Validate PROTOCOL_FILE and its system without running MD; print what would run."""
     from .protocol import load_protocol
@@ -75,7 +75,7 @@ def check(protocol_file):
 
 
 @main.command()
-@click.argument("protocol_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("protocol_file", type=click.Path(path_type=Path))   # read_text explains a folder in one line
 @click.option("-o", "--folder", type=click.Path(file_okay=False, path_type=Path),
               help="Run folder (default: runs/<protocol name>).")
 @click.option("--platform", "platform_name", type=click.Choice(["auto", "Reference", "CPU"]),

@@ -41,7 +41,13 @@ class ConvergenceWarning(BoostWarning):
     """A series is too short or too correlated for the estimate to be trusted."""
 
 
+def printable(text):
+    """``text`` as it may go on a terminal line: each character that is not printable escaped."""
+    text = str(text)
+    return text if text.isprintable() else "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
+
+
 def where(file, key_path):
     """Format the place an input problem is found: ``protocol.yaml: run.timestep``."""
-    name = str(file) if file is not None else "<input>"
+    name = printable(file) if file is not None else "<input>"
     return f"{name}: {key_path}" if key_path else name

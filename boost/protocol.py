@@ -18,11 +18,13 @@ from pathlib import Path
 import numpy as np
 
 from .exceptions import ProtocolError
+from .limits import (MAX_COUNT, MAX_SPEC_BYTES, MAX_SWAP_ATTEMPTS, MAX_TITLE_LENGTH, check_conditions,
+                     check_swap_proposals)
 from .spec import Node, load_yaml, parse_yaml, read_text
 
 SCHEMA_VERSION = 1
 _NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")   # used with match(); \Z refuses "x\n"
-_MAX_COUNT = 10_000    # windows, temperatures or bins from a 'count'; more is a typo, not a plan
+_SAME_ANGLE = 1e-9     # rad: dihedral window centres closer than this (modulo 360 deg) are one centre
 _RESERVED = {"cycle", "walker", "condition", "potential", "volume", "reduced", "time", "production"}
 _POINT_COUNT = {"distance": 2, "angle": 3, "dihedral": 4, "position": 1}
 _AXES = {"x": 0, "y": 1, "z": 2}
@@ -192,7 +194,7 @@ def load_protocol(path):
         One line naming the file, the key path and what was expected.
     """
     path = Path(path)
-    text = read_text(path, "protocol")
+    text = read_text(path, "protocol", max_bytes=MAX_SPEC_BYTES)
     return parse_protocol(text, path)
 
 
@@ -214,9 +216,13 @@ def parse_protocol(text, path):
     umbrella = _read_umbrella(root.get("umbrella", {}), coordinates)
     temperatures = _read_temperatures(root.get("temperatures", None), temperature)
     exchange = _read_exchange(root.get("exchange", None))
-    if exchange is not None and len(temperatures) == 1 and math.prod(len(a.centres) for a in umbrella) < 2:
+    n_conditions = check_conditions(root.get("umbrella" if umbrella else "temperatures", None),
+                                    len(temperatures), [len(axis.centres) for axis in umbrella])
+    if exchange is not None and n_conditions < 2:
         root.get("exchange").fail("used with a ladder: a 'temperatures' list or 'umbrella' windows "
                                   "along a coordinate, which this protocol lacks")
+    if exchange is not None and exchange.pairs == "any":
+        check_swap_proposals(root.get("exchange"), exchange.attempts, n_conditions)   # one walker each
     run = _read_run(root.get("run"), timestep)
     return Protocol(
         path=path, text=text, sha256=hashlib.sha256(text.encode()).hexdigest(),
@@ -234,8 +240,7 @@ def parse_protocol(text, path):
 
 
 def _read_title(root):
-    title = root.get("title", "untitled")
-    return title.text()
+    return root.get("title", "untitled").line(MAX_TITLE_LENGTH)
 
 
 # -- coordinates ----------------------------------------------------------------------
@@ -339,23 +344,46 @@ def _read_umbrella(node, coordinates):
         entry.mapping(allowed=("centres", "spring"), required=("centres", "spring"))
         centres = _read_centres(entry.get("centres"), coordinate)
         springs = _read_springs(entry.get("spring"), coordinate, len(centres))
-        if len(set(zip(centres, springs))) != len(centres):
-            entry.fail("windows that differ in centre or spring (two are the same)", got=entry.value)
+        _check_distinct_windows(entry, coordinate, centres, springs)
         axes.append(UmbrellaAxis(coordinate.name, centres, springs))
     if len(axes) > 2:
         node.fail("windows along one coordinate or a grid over two")
     return tuple(axes)
 
 
+def _check_distinct_windows(node, coordinate, centres, springs):
+    """Refuse two windows with the same spring and centre; on a dihedral, centres 360 deg apart."""
+    period = 2 * math.pi if coordinate.periodic else None
+    by_spring = {}
+    for i, spring in enumerate(springs):
+        by_spring.setdefault(spring, []).append(i)
+    for indices in by_spring.values():
+        keys = sorted((centres[i] % period if period else centres[i], i) for i in indices)
+        if period:
+            keys.append((keys[0][0] + period, keys[0][1]))      # the circle closes
+        for (a, i), (b, j) in zip(keys, keys[1:]):
+            if i != j and b - a <= (_SAME_ANGLE if period else 0.0):
+                i, j = sorted((i, j))
+                modulo = " (modulo 360 deg on a dihedral)" if period else ""
+                raise ProtocolError(
+                    f"{node.place} must be windows that differ in centre{modulo} or spring. Got centres[{i}] "
+                    f"({_show_centre(centres[i], coordinate)}) and centres[{j}] "
+                    f"({_show_centre(centres[j], coordinate)}) with the same spring instead.")
+
+
+def _show_centre(value, coordinate):
+    return f"{math.degrees(value):g} deg" if coordinate.unit == "rad" else f"{value:g} nm"
+
+
 def _read_centres(node, coordinate):
     dimension = coordinate.value_dimension
     if isinstance(node.value, list):
-        centres = tuple(item.quantity(dimension) for item in node.sequence(min_length=1))
+        centres = tuple(item.quantity(dimension) for item in node.sequence(min_length=1, max_length=MAX_COUNT))
     else:
         node.mapping(allowed=("from", "to", "count"), required=("from", "to", "count"))
         start = node.get("from").quantity(dimension)
         stop = node.get("to").quantity(dimension)
-        count = node.get("count").integer(minimum=2, maximum=_MAX_COUNT)
+        count = node.get("count").integer(minimum=2, maximum=MAX_COUNT)
         if stop <= start:
             node.get("to").fail("above 'from'")
         if not math.isfinite(stop - start):
@@ -370,10 +398,9 @@ def _read_centres(node, coordinate):
 def _read_springs(node, coordinate, count):
     dimension = coordinate.spring_dimension
     if isinstance(node.value, list):
-        springs = tuple(item.quantity(dimension, positive=True) for item in node.sequence())
-        if len(springs) != count:
+        if len(node.value) != count:
             node.fail(f"one spring constant, or a list of {count} (one per window)")
-        return springs
+        return tuple(item.quantity(dimension, positive=True) for item in node.sequence())
     return (node.quantity(dimension, positive=True),) * count
 
 
@@ -381,12 +408,13 @@ def _read_temperatures(node, temperature):
     if node.value is None:
         return (temperature,)
     if isinstance(node.value, list):
-        ladder = tuple(item.quantity("temperature", positive=True) for item in node.sequence(min_length=2))
+        ladder = tuple(item.quantity("temperature", positive=True)
+                       for item in node.sequence(min_length=2, max_length=MAX_COUNT))
     else:
         node.mapping(allowed=("lowest", "highest", "count"), required=("lowest", "highest", "count"))
         lowest = node.get("lowest").quantity("temperature", positive=True)
         highest = node.get("highest").quantity("temperature", positive=True)
-        count = node.get("count").integer(minimum=2, maximum=_MAX_COUNT)
+        count = node.get("count").integer(minimum=2, maximum=MAX_COUNT)
         if highest <= lowest:
             node.get("highest").fail("above 'lowest'")
         ladder = tuple(np.geomspace(lowest, highest, count).tolist())
@@ -401,7 +429,8 @@ def _read_exchange(node):
     node.mapping(allowed=("pairs", "attempts"),
                  renamed={"scheme": "exchange.pairs (adjacent: neighbours on the ladder; any: every pair)"})
     pairs = node.get("pairs", "adjacent").text(choices=EXCHANGE_PAIRS)
-    return ExchangeSettings(pairs=pairs, attempts=node.get("attempts", 1).integer(minimum=1))
+    attempts = node.get("attempts", 1).integer(minimum=1, maximum=MAX_SWAP_ATTEMPTS)
+    return ExchangeSettings(pairs=pairs, attempts=attempts)
 
 
 def _read_platform(node):
@@ -433,6 +462,14 @@ def _cycles(node, steps_per_cycle, timestep, what):
     return steps // steps_per_cycle
 
 
+def _interval(node, steps_per_cycle, timestep, what, hint=""):
+    """Cycles between two writes: at least one (0 would not mean 'never' nor 'every cycle')."""
+    cycles = _cycles(node, steps_per_cycle, timestep, what)
+    if cycles < 1:
+        node.fail(f"at least one cycle ({steps_per_cycle * timestep:g} ps){hint}")
+    return cycles
+
+
 def _read_run(node, timestep):
     node.mapping(allowed=("cycle", "equilibration", "production", "frame_every",
                           "checkpoint_every", "minimise", "retries"), required=("production",),
@@ -449,10 +486,10 @@ def _read_run(node, timestep):
         equilibration_cycles=_cycles(node.get("equilibration", "0 ps"), steps_per_cycle, timestep,
                                      "the equilibration"),
         production_cycles=production,
-        frame_every=0 if frames.value is None else max(
-            1, _cycles(frames, steps_per_cycle, timestep, "the frame interval")),
-        checkpoint_every=max(1, _cycles(node.get("checkpoint_every", "10 ps"), steps_per_cycle,
-                                        timestep, "the checkpoint interval")),
+        frame_every=0 if frames.value is None else _interval(frames, steps_per_cycle, timestep,
+                                                             "the frame interval", " (leave it out for no frames)"),
+        checkpoint_every=_interval(node.get("checkpoint_every", "10 ps"), steps_per_cycle, timestep,
+                                   "the checkpoint interval"),
         minimise=node.get("minimise", True).boolean(),
         retries=node.get("retries", 0).integer(minimum=0),
     )
@@ -518,7 +555,7 @@ def _read_analysis(node, coordinates, run, timestep):
             entry.get("to").fail("above 'from'")
         if not math.isfinite(stop - start):
             entry.fail("a range of finite width")
-        count = entry.get("count").integer(minimum=1, maximum=_MAX_COUNT)
+        count = entry.get("count").integer(minimum=1, maximum=MAX_COUNT)
         bins.append(Bins(coordinate.name, tuple(np.linspace(start, stop, count + 1).tolist())))
     unit = node.get("energy_unit", "kJ/mol").text(choices=("kJ/mol", "kcal/mol", "kT"))
     memory = node.get("memory", "1 GiB").quantity("memory", positive=True)

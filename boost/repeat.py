@@ -25,6 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from .exceptions import BoostWarning, InputError, RunFolderError
+from .limits import MAX_SPEC_BYTES
 from .protocol import PlatformSettings, parse_protocol
 from .provenance import read_protocol_at_commit
 from .spec import read_text
@@ -135,8 +136,8 @@ def plan_repeat(source, *, folder=None, revision=None, against=None):
         kind = "protocol file"
         if revision is not None:
             text, commit = read_protocol_at_commit(source, revision)
-        elif source.is_file():
-            text, commit = read_text(source, "protocol"), None
+        elif source.exists():         # read_text refuses a FIFO, a device or a too-large file in one line
+            text, commit = read_text(source, "protocol", max_bytes=MAX_SPEC_BYTES), None
         else:
             raise InputError(f"{source}: no such run folder or protocol file.")
         protocol = parse_protocol(text, source)

@@ -9,11 +9,15 @@ Only safe YAML loading is used; duplicate keys are errors.
 """
 
 import difflib
+import os
+import stat
+import unicodedata
 from pathlib import Path
 
 import yaml
 
-from .exceptions import InputError, ProtocolError, where
+from .exceptions import InputError, ProtocolError, printable, where
+from .limits import MAX_SPEC_BYTES
 from .units import parse_quantity, show_value
 
 _MISSING = object()
@@ -61,40 +65,84 @@ _StrictLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _c
 
 def parse_yaml(text, file):
     """Parse YAML text into a :class:`Node`; syntax errors name the file and line."""
+    name = printable(file)
     try:
         data = yaml.load(text, Loader=_StrictLoader)  # noqa: S506 (a SafeLoader subclass)
     except yaml.MarkedYAMLError as err:
         mark = err.problem_mark or err.context_mark
         line = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
-        raise ProtocolError(f"{file}: is not valid YAML{line}: {err.problem or err.context}.") from None
+        raise ProtocolError(f"{name}: is not valid YAML{line}: {printable(err.problem or err.context)}.") from None
     except yaml.reader.ReaderError as err:  # its str() spans two lines
-        raise ProtocolError(f"{file}: is not valid YAML: character #x{err.character:04x} at position "
+        raise ProtocolError(f"{name}: is not valid YAML: character #x{err.character:04x} at position "
                             f"{err.position} is not allowed in YAML.") from None
     except yaml.YAMLError as err:
-        raise ProtocolError(f"{file}: is not valid YAML: {' '.join(str(err).split())}.") from None
+        raise ProtocolError(f"{name}: is not valid YAML: {printable(' '.join(str(err).split()))}.") from None
     except RecursionError:
-        raise ProtocolError(f"{file}: is nested too deeply to read.") from None
+        raise ProtocolError(f"{name}: is nested too deeply to read.") from None
     return Node(data, file, "")
 
 
-def read_text(path, what):
-    """Read a text file, turning every OS problem into one InputError line."""
-    path = Path(path)
+_MISSING_FILE = "does not exist"
+
+
+def file_problem(path):
+    """Why ``path`` is not a regular file to read, as a clause ("is a folder, not a file"), or None.
+
+    Only looks (stat): a FIFO or a device is never opened, since reading one may block
+    or never end.
+    """
     try:
-        return path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError(f"{path}: {what} file not found.") from None
-    except IsADirectoryError:
-        raise InputError(f"{path}: {what} file expected, found a folder.") from None
-    except UnicodeDecodeError:
-        raise InputError(f"{path}: {what} file is not UTF-8 text.") from None
+        mode = os.stat(path).st_mode
+    except (FileNotFoundError, NotADirectoryError):
+        return _MISSING_FILE
+    except ValueError:                                   # a NUL character in the path
+        return "is not a valid path (it holds a NUL character)"
     except OSError as err:
-        raise InputError(f"{path}: {what} file cannot be read ({err.strerror}).") from None
+        return f"cannot be read ({err.strerror})"
+    if stat.S_ISREG(mode):
+        return None
+    if stat.S_ISDIR(mode):
+        return "is a folder, not a file"
+    kind = ("a FIFO" if stat.S_ISFIFO(mode) else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode)
+            else "a socket" if stat.S_ISSOCK(mode) else "a special file")
+    return f"is not a regular file ({kind})"
+
+
+def read_text(path, what, max_bytes=None):
+    """Read a regular UTF-8 text file, turning every problem into one InputError line.
+
+    The message never quotes the file's content. ``max_bytes``: refuse a larger file
+    without reading it.
+    """
+    path, shown = Path(path), printable(path)
+    problem = file_problem(path)
+    if problem == _MISSING_FILE:
+        raise InputError(f"{shown}: {what} file not found.")
+    if problem is not None:
+        raise InputError(f"{shown}: {problem}; a {what} file is expected.")
+    try:
+        # O_NONBLOCK: should the path have become a FIFO since the look above, opening it
+        # does not wait for a writer; fstat then refuses it.
+        descriptor = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
+        with open(descriptor, encoding="utf-8") as handle:
+            status = os.fstat(descriptor)
+            if not stat.S_ISREG(status.st_mode):
+                raise InputError(f"{shown}: is not a regular file; a {what} file is expected.")
+            if max_bytes is not None and status.st_size > max_bytes:
+                raise InputError(f"{shown}: a {what} file must be at most {max_bytes} bytes. "
+                                 f"Got {status.st_size} bytes instead.")
+            return handle.read()
+    except UnicodeDecodeError:
+        raise InputError(f"{shown}: {what} file is not UTF-8 text.") from None
+    except InputError:
+        raise
+    except OSError as err:
+        raise InputError(f"{shown}: {what} file cannot be read ({err.strerror}).") from None
 
 
 def load_yaml(path, what="protocol"):
-    """Read and parse a YAML file into a :class:`Node`."""
-    return parse_yaml(read_text(path, what), Path(path))
+    """Read and parse a YAML file (at most MAX_SPEC_BYTES) into a :class:`Node`."""
+    return parse_yaml(read_text(path, what, max_bytes=MAX_SPEC_BYTES), Path(path))
 
 
 class Node:
@@ -128,6 +176,9 @@ class Node:
         naming the replacement (no silent alias: the file must be changed).
         """
         if not isinstance(self.value, dict):
+            if not self.path:      # a whole file: describe it, never quote an arbitrary file
+                raise ProtocolError(f"{self.place} must be a mapping of keys to values. "
+                                    f"Got {_describe(self.value)} instead.")
             self.fail("a mapping of keys to values")
         for key, replacement in (renamed or {}).items():
             if key in self.value:
@@ -165,11 +216,14 @@ class Node:
         self.mapping()
         return [(key, Node(value, self.file, self._child_path(key))) for key, value in self.value.items()]
 
-    def sequence(self, min_length=0):
+    def sequence(self, min_length=0, max_length=None):
         if not isinstance(self.value, list):
             self.fail("a list")
         if len(self.value) < min_length:
             self.fail(f"a list of at least {min_length} item{'s' if min_length != 1 else ''}")
+        if max_length is not None and len(self.value) > max_length:
+            raise ProtocolError(f"{self.place} must be a list of at most {max_length} items. "
+                                f"Got {len(self.value)} items instead.")
         return [Node(item, self.file, self._child_path(i)) for i, item in enumerate(self.value)]
 
     # -- scalars ----------------------------------------------------------------------
@@ -178,6 +232,21 @@ class Node:
             self.fail("a non-empty text" if choices is None else "one of " + ", ".join(map(repr, choices)))
         if choices is not None and self.value not in choices:
             self.fail("one of " + ", ".join(map(repr, choices)))
+        return self.value
+
+    def line(self, max_length):
+        """Text for one terminal line (a title): printable, at most ``max_length`` characters.
+
+        A refused text is described, never echoed: it may hold terminal control sequences.
+        """
+        self.text()
+        if len(self.value) > max_length:
+            raise ProtocolError(f"{self.place} must be at most {max_length} characters long. "
+                                f"Got {len(self.value)} characters instead.")
+        for i, char in enumerate(self.value):
+            if not (char.isprintable() or unicodedata.category(char) == "Zs"):   # Zs: spaces such as U+00A0
+                raise ProtocolError(f"{self.place} must be printable text on one line (no control "
+                                    f"characters). Got U+{ord(char):04X} at character {i + 1} instead.")
         return self.value
 
     def integer(self, minimum=None, maximum=None):
@@ -216,6 +285,17 @@ class Node:
         text = self.text()
         path = Path(text).expanduser()
         return path if path.is_absolute() else (Path(base_dir) / path)
+
+
+def _describe(value):
+    """What a value is, without its content: for whole files, which may be anything."""
+    if value is None:
+        return "an empty document"
+    if isinstance(value, str):
+        return f"a text of {len(value)} characters"
+    if isinstance(value, list):
+        return f"a list of {len(value)} items"
+    return f"a single {type(value).__name__} value"
 
 
 def _example(dimension):

@@ -32,8 +32,9 @@ import numpy as np
 import openmm
 from openmm import app, unit
 
-from .exceptions import BoostError, InputError, ProtocolError
-from .spec import load_yaml, read_text
+from .exceptions import BoostError, InputError, ProtocolError, printable
+from .limits import MAX_TITLE_LENGTH
+from .spec import file_problem, load_yaml, read_text
 
 SOURCE_KEYS = ("model", "peptide", "pdb", "amber", "gromacs", "charmm", "serialized")
 OPTION_KEYS = ("forcefield", "implicit_solvent", "water_box", "nonbonded", "constraints")
@@ -103,7 +104,7 @@ def list_bundled_systems():
     rows = []
     for path in sorted(bundled_systems_folder().glob("*.yaml"), key=lambda p: p.stem):
         root = load_yaml(path, what="system")
-        title = root.get("title").text() if root.has("title") else ""
+        title = root.get("title").line(MAX_TITLE_LENGTH) if root.has("title") else ""
         rows.append((path.stem, title, path))
     return rows
 
@@ -157,7 +158,7 @@ def build_system(node, base_dir):
             raise ProtocolError(
                 f"{node.get(key).place} does not apply to the '{source}' source. "
                 f"Options there: {', '.join(allowed) or 'none'}.")
-    title = node.get("title").text() if node.has("title") else ""
+    title = node.get("title").line(MAX_TITLE_LENGTH) if node.has("title") else ""
     system, topology, positions, coordinates_node = _SOURCES[source](
         node, node.get(source), Path(base_dir))
     return _finish(system, topology, positions, title, coordinates_node)
@@ -175,18 +176,21 @@ def _find_spec_file(node, base_dir):
         if bundled.is_file():
             return bundled
         names = ", ".join(sorted(p.stem for p in bundled_systems_folder().glob("*.yaml")))
-        raise InputError(f"{node.place} names {path}, which does not exist, and no bundled "
+        raise InputError(f"{node.place} names {printable(path)}, which does not exist, and no bundled "
                          f"system is called '{stem}' (bundled: {names or 'none'}).")
     return _input_file(node, base_dir)
 
 
 def _input_file(node, base_dir):
-    """The existing file a path node names, or an InputError naming the node and path."""
+    """The regular file a path node names, or an InputError naming the node and path.
+
+    Every file of a system spec passes here before a reader opens it: a FIFO or a device
+    is refused without being opened (reading one may block or never end).
+    """
     path = node.path_value(base_dir)
-    if not path.exists():
-        raise InputError(f"{node.place} names {path}, which does not exist.")
-    if not path.is_file():
-        raise InputError(f"{node.place} names {path}, which is a folder, not a file.")
+    problem = file_problem(path)
+    if problem is not None:
+        raise InputError(f"{node.place} names {printable(path)}, which {problem}.")
     return path
 
 
@@ -198,8 +202,8 @@ def _read(node, base_dir, kind, reader, *, path=None):
     except BoostError:
         raise
     except Exception as err:  # OpenMM's readers raise many types on malformed files
-        raise InputError(f"{node.place} names {path}, which cannot be read as {kind} "
-                         f"({type(err).__name__}: {_one_line(err)}).") from None
+        raise InputError(f"{node.place} names {printable(path)}, which cannot be read as {kind} "
+                         f"({_cut(f'{type(err).__name__}: {_one_line(err)}')}).") from None
 
 
 def _read_structure(node, base_dir):
@@ -210,12 +214,18 @@ def _read_structure(node, base_dir):
     else:
         structure = _read(node, base_dir, "a PDB file", app.PDBFile, path=path)
     if structure.topology.getNumAtoms() == 0:
-        raise InputError(f"{node.place} names {path}, which holds no atoms.")
+        raise InputError(f"{node.place} names {printable(path)}, which holds no atoms.")
     return structure
 
 
 def _one_line(err):
-    return " ".join(str(err).split()).rstrip(".") or type(err).__name__
+    """A library's error message on one line, anything unprintable in it escaped."""
+    return printable(" ".join(str(err).split()).rstrip(".")) or type(err).__name__
+
+
+def _cut(text, limit=80):
+    """A reader's message may quote the file it read: keep it short."""
+    return text if len(text) <= limit else text[:limit - 3] + "..."
 
 
 # -- the sources ----------------------------------------------------------------------
@@ -299,7 +309,7 @@ def _from_gromacs(spec, src, base_dir):
     if src.has("include_dir"):
         include = src.get("include_dir").path_value(base_dir)
         if not include.is_dir():
-            raise InputError(f"{src.get('include_dir').place} names {include}, "
+            raise InputError(f"{src.get('include_dir').place} names {printable(include)}, "
                              "which is not an existing folder.")
         options["includeDir"] = str(include)
     top = _read(top_node, base_dir, "a GROMACS top file",
@@ -350,7 +360,7 @@ def _from_serialized(spec, src, base_dir):
     system = _read(xml_node, base_dir, "an OpenMM XML file",
                    lambda _: openmm.XmlSerializer.deserialize(text), path=path)
     if not isinstance(system, openmm.System):
-        raise InputError(f"{xml_node.place} names {path}, which holds a serialized "
+        raise InputError(f"{xml_node.place} names {printable(path)}, which holds a serialized "
                          f"{type(system).__name__}, not a System.")
     structure = _read_structure(pdb_node, base_dir)
     box = structure.topology.getPeriodicBoxVectors()
@@ -372,13 +382,25 @@ def _forcefield_entries(spec, base_dir, *, implicit=True):
     items = [ff_node] if isinstance(ff_node.value, str) else ff_node.sequence(min_length=1)
     entries = []
     for item in items:
-        local = item.path_value(base_dir)
-        entries.append((item.place, str(local) if local.is_file() else item.text()))
+        entries.append((item.place, _forcefield_file(item, base_dir)))
     implicit_node = spec.get("implicit_solvent", "none")
     name = implicit_node.text(choices=IMPLICIT_SOLVENTS)
     if implicit and name != "none":
         entries.append((implicit_node.place, f"implicit/{name}.xml"))
     return entries
+
+
+def _forcefield_file(item, base_dir):
+    """The force field file beside the spec, else the name for OpenMM to look up.
+
+    A FIFO, a device or a folder is refused, also under the name as OpenMM would open it
+    (from the working folder): reading one may block or never end.
+    """
+    local = item.path_value(base_dir)
+    for path in (local,) if local.is_file() else (local, Path(item.text())):
+        if path.exists() and file_problem(path) is not None:
+            raise InputError(f"{item.place} names {printable(path)}, which {file_problem(path)}.")
+    return str(local) if local.is_file() else item.text()
 
 
 def _load_forcefield(ff_node, entries):

@@ -462,6 +462,10 @@ def _cycles(node, steps_per_cycle, timestep, what):
     return steps // steps_per_cycle
 
 
+#: Without run.checkpoint_every, a checkpoint about this often (ps), at a whole number of cycles.
+DEFAULT_CHECKPOINT_PS = 10.0
+
+
 def _interval(node, steps_per_cycle, timestep, what, hint=""):
     """Cycles between two writes: at least one (0 would not mean 'never' nor 'every cycle')."""
     cycles = _cycles(node, steps_per_cycle, timestep, what)
@@ -488,8 +492,8 @@ def _read_run(node, timestep):
         production_cycles=production,
         frame_every=0 if frames.value is None else _interval(frames, steps_per_cycle, timestep,
                                                              "the frame interval", " (leave it out for no frames)"),
-        checkpoint_every=_interval(node.get("checkpoint_every", "10 ps"), steps_per_cycle, timestep,
-                                   "the checkpoint interval"),
+        checkpoint_every=_interval(node.get("checkpoint_every"), steps_per_cycle, timestep, "the checkpoint interval")
+        if node.has("checkpoint_every") else max(1, round(DEFAULT_CHECKPOINT_PS / (steps_per_cycle * timestep))),
         minimise=node.get("minimise", True).boolean(),
         retries=node.get("retries", 0).integer(minimum=0),
     )

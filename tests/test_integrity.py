@@ -140,6 +140,22 @@ def test_a_flipped_byte_in_a_recorded_potential_is_found_by_its_cycle_checksum(r
     assert caught.value.first_bad_cycle == 40
 
 
+def test_a_flipped_ledger_byte_through_the_command_line_prints_no_number_and_changes_nothing(runs, copy_of):
+    folder = copy_of("finished")
+    potential = read_ledger(folder).potential_rt[0, 55]
+    flip(folder / "ledger.sqlite", offset_of_real(folder / "ledger.sqlite", potential) + 6, 0x04)
+    before = files_of(folder)
+    result = boost("analyze", str(folder), cwd=folder.parent)
+    assert_one_line_error(result, r"ledger\.sqlite: cycle 55 is damaged")
+    assert result.stdout == ""                                   # no table, no number
+    assert files_of(folder) == before
+
+
+def files_of(folder):
+    """Every file's bytes but SQLite's side files (-wal, -shm), which a read of the ledger may add."""
+    return {p: p.read_bytes() for p in folder.rglob("*") if p.is_file() and not p.name.endswith(("-wal", "-shm"))}
+
+
 def test_resume_recomputes_a_damaged_cycle_after_an_intact_checkpoint(runs, copy_of, caplog):
     folder = copy_of("finished")
     potential = read_ledger(folder).potential_rt[0, 104]

@@ -208,3 +208,11 @@ def test_required_key_missing(write_protocol, double_well_text):
 def test_top_level_must_be_mapping(tmp_path):
     with pytest.raises(ProtocolError, match=r"p\.yaml: \(top level\) must be a mapping"):
         parse_protocol("- just\n- a list\n", tmp_path / "p.yaml")
+
+
+def test_the_default_checkpoint_interval_fits_any_cycle(write_protocol, double_well_text):
+    # a cycle that does not divide 10 ps must not make the key the user never wrote an error
+    text = double_well_text.replace("cycle: 0.1 ps", "cycle: 3 ps").replace("production: 5 ps", "production: 30 ps")
+    text = text.replace("equilibration: 1 ps", "equilibration: 3 ps").replace("frame_every: 1 ps", "frame_every: 3 ps")
+    assert load_protocol(write_protocol(text)).run.checkpoint_every == 3          # 9 ps, nearest to 10 ps
+    assert load_protocol(write_protocol(double_well_text)).run.checkpoint_every == 100

@@ -212,14 +212,21 @@ def _protocol_file(folder):
     return str(path)
 
 
-def test_a_ledger_whose_meta_table_was_edited_is_refused(runs, copy_of):
-    # the case: a foreign ledger with bad JSON in its meta table ended in "internal error"
+@pytest.mark.parametrize("edit", [
+    ("UPDATE meta SET value = '{not json' WHERE key = 'temperature'", ()),      # the foreign ledger
+    ("UPDATE meta SET value = '310.0' WHERE key = 'temperature'", ()),         # valid, but not what was run
+    ("UPDATE conditions SET centres = ? WHERE condition = 1", (b"\x1b[31m\x00\xff raw",)),   # binary in a text column
+])
+def test_a_ledger_whose_header_was_edited_is_refused_without_echoing_it(runs, copy_of, edit):
+    # the cases: bad JSON in the meta table ended in "internal error"; raw bytes
+    # of a corrupted text column reached the terminal
     folder = copy_of("finished")
     with sqlite3.connect(folder / "ledger.sqlite") as connection:
-        connection.execute("UPDATE meta SET value = '{not json' WHERE key = 'temperature'")
+        connection.execute(*edit)
     connection.close()
     result = boost("analyze", str(folder), cwd=folder.parent)
     assert_one_line_error(result, r"ledger\.sqlite: is damaged \(its header")
+    assert "\x1b" not in result.stderr and "raw" not in result.stderr
 
 
 def test_a_damaged_walker_checkpoint_falls_back_to_the_one_before(runs, copy_of, caplog):

@@ -20,7 +20,8 @@ if str(REPO) not in sys.path:
 
 import boost.cores                                # noqa: E402
 from boost.protocol import load_protocol          # noqa: E402
-from boost.scheduler import Scheduler, make_plan  # noqa: E402
+from boost.plan import make_plan  # noqa: E402
+from boost.scheduler import Scheduler  # noqa: E402
 
 
 # -- the machine ------------------------------------------------------------------------

@@ -123,7 +123,7 @@ def write_synthetic_ledger(folder, n_cycles, rho, seed=12345):
     protocol = parse_protocol(text, folder / PROTOCOL_FILE)
     conditions = build_conditions(protocol)
     ledger = Ledger(folder / LEDGER, coordinate_names=("phi", "psi"))
-    ledger.create(conditions, {     # the keys the scheduler writes (boost.scheduler._create_folder)
+    ledger.create(conditions, {     # the keys the scheduler writes (boost.plan.ledger_header)
         "coordinates": ["phi", "psi"], "periodic": [True, True], "units": {"phi": "rad", "psi": "rad"},
         "umbrella": ["phi"], "n_walkers": N_WINDOWS, "temperature": 300.0, "pressure": None,
         "timestep_ps": protocol.timestep, "steps_per_cycle": protocol.run.steps_per_cycle,

@@ -169,7 +169,7 @@ class InterleavedScheduler(Scheduler):
 
 def interleaved_trial(path, folder):
     from boost.protocol import load_protocol
-    from boost.scheduler import make_plan
+    from boost.plan import make_plan
 
     plan = make_plan(load_protocol(path))
     scheduler = InterleavedScheduler(plan, folder, progress=False, workers=1)
@@ -226,7 +226,7 @@ def main():
         path = benchlib.write_protocol(tmp, "breakdown", PROTOCOL.format(
             system=CASES[0][0], platform=CASES[0][1], walkers=args.walkers, cycle=0.5, production=100.0))
         from boost.protocol import load_protocol
-        from boost.scheduler import make_plan
+        from boost.plan import make_plan
         plan = make_plan(load_protocol(path))
         benchlib.describe_load("end")
         print("Where the time of one cycle goes (vacuum case, 0.5 ps cycles; CPU µs, measured in this process):")

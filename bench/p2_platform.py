@@ -66,7 +66,7 @@ def settings_for(protocol_platform, name, threads):
 
 def measure_system(system, tmp, args):
     from boost.protocol import load_protocol
-    from boost.scheduler import make_plan
+    from boost.plan import make_plan
 
     probe_path = benchlib.write_protocol(tmp, f"{system}-probe", PROTOCOL.format(
         system=system, cycle=CYCLE_PS, production=CYCLE_PS))

@@ -140,7 +140,7 @@ def write_ledger(folder, text, x_rt, potential_rt, record_cycles):
     conditions = build_conditions(protocol)
     n_walkers, n_cycles = x_rt.shape
     ledger = Ledger(folder / LEDGER, coordinate_names=("x",))
-    ledger.create(conditions, {     # the keys the scheduler writes (boost.scheduler._create_folder)
+    ledger.create(conditions, {     # the keys the scheduler writes (boost.plan.ledger_header)
         "coordinates": ["x"], "periodic": [False], "units": {"x": "nm"},
         "umbrella": ["x"] if protocol.umbrella else [], "n_walkers": n_walkers, "temperature": 300.0,
         "pressure": None, "timestep_ps": protocol.timestep, "steps_per_cycle": protocol.run.steps_per_cycle,

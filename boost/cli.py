@@ -65,7 +65,7 @@ def _platform_override(protocol, name, threads):
 def check(protocol_file):
     """Validate PROTOCOL_FILE and its system without running MD; print what would run."""
     from .protocol import load_protocol
-    from .scheduler import make_plan
+    from .plan import make_plan
     from .summary import describe_plan
 
     protocol = load_protocol(protocol_file)
@@ -89,7 +89,8 @@ def run(protocol_file, folder, platform_name, threads, workers, quiet):
     Under mpiexec, walkers are spread over the ranks and rank 0 writes the run folder.
     """
     from .protocol import load_protocol
-    from .scheduler import make_plan, Scheduler
+    from .plan import make_plan
+    from .scheduler import Scheduler
     from .summary import describe_plan
     from .workers import cores_of_rank, mpi_world, release_waiting_ranks, serve_mpi_rank
 
@@ -129,10 +130,8 @@ def systems():
 @click.option("--memory", help="Memory the analysis may use, e.g. '4 GiB' (default: the protocol's analysis.memory).")
 def analyze(run_folder, temperature, energy_unit, output, memory):
     """Reweight RUN_FOLDER with MBAR: basin populations, ΔG, PMFs, diagnostics."""
-    import warnings
-
     from .analysis import analyse_run
-    from .exceptions import BoostWarning, ProtocolError, RunFolderError
+    from .exceptions import ProtocolError, RunFolderError, warnings_to_log
     from .protocol import MIN_ANALYSIS_MEMORY
     from .report import claim_output_folder, format_summary, write_report
     from .store import LEDGER
@@ -151,12 +150,8 @@ def analyze(run_folder, temperature, energy_unit, output, memory):
         if memory_bytes < MIN_ANALYSIS_MEMORY:
             raise ProtocolError(f"--memory must be at least {MIN_ANALYSIS_MEMORY // 2**20} MiB. Got {memory!r} instead.")
     output = claim_output_folder(output or run_folder / "analysis")     # before hours of work, not after
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", BoostWarning)
+    with warnings_to_log():
         analysis = analyse_run(run_folder, temperature=target, energy_unit=energy_unit, memory=memory_bytes)
-    for warning in caught:
-        if issubclass(warning.category, BoostWarning):
-            logging.getLogger("boost").warning("warning: %s", warning.message)
     out = write_report(analysis, output)
     click.echo(format_summary(analysis))
     click.echo(f"tables and plots: {out}")

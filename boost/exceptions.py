@@ -4,6 +4,8 @@ Every error also subclasses a built-in type so that callers who do not know boos
 still catch it. The command line prints a BoostError as one line and exits with code 2.
 """
 
+import contextlib
+
 
 class BoostError(Exception):
     """Base of every error boost raises on purpose."""
@@ -51,3 +53,21 @@ def where(file, key_path):
     """Format the place an input problem is found: ``protocol.yaml: run.timestep``."""
     name = printable(file) if file is not None else "<input>"
     return f"{name}: {key_path}" if key_path else name
+
+
+@contextlib.contextmanager
+def warnings_to_log(prefix="warning"):
+    """Route boost's warnings raised inside the block to the 'boost' log, one line each,
+    as ``<prefix>: <message>``, after the block (other warnings pass through untouched)."""
+    import logging
+    import warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", BoostWarning)
+        yield
+    log = logging.getLogger("boost")
+    for warning in caught:
+        if issubclass(warning.category, BoostWarning):
+            log.warning("%s: %s", prefix, warning.message)
+        else:
+            warnings.warn_explicit(warning.message, warning.category, warning.filename, warning.lineno)

@@ -94,3 +94,22 @@ def swap_any_pairs(u_kr, assignment, rng, *, attempts=None):
         tried, won = counts.get(key, (0, 0))
         counts[key] = (tried + 1, won + int(accepted))
     return assignment, SwapTally(tuple((a, b, n, m) for (a, b), (n, m) in sorted(counts.items())))
+
+
+def any_pairs_proposals(attempts, n_walkers):
+    """Proposals per cycle with ``pairs: any``: ``attempts`` times n_walkers³ (see swap_any_pairs)."""
+    return attempts * n_walkers**3
+
+
+def swap_for_cycle(pairs, attempts, u_kr, assignment, ladder_shape, cycle, rng):
+    """One cycle's swaps under the protocol's exchange policy (``exchange.pairs``, ``attempts``).
+
+    'adjacent': ``attempts`` passes over neighbouring pairs of the ladder; 'any': random
+    pairs of any two conditions, ``any_pairs_proposals`` of them. Returns the new
+    assignment and the tally rows (condition_i, condition_j, attempts, accepted).
+    """
+    if pairs == "any":
+        new, tally = swap_any_pairs(u_kr, assignment, rng, attempts=any_pairs_proposals(attempts, len(assignment)))
+    else:
+        new, tally = swap_adjacent(u_kr, assignment, ladder_shape, cycle, rng, attempts=attempts)
+    return new, tally.pairs

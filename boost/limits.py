@@ -10,6 +10,7 @@ count is made. The README's protocol reference gives each bound and its reason.
 import math
 
 from .exceptions import ProtocolError
+from .exchange import any_pairs_proposals
 
 #: Windows along one umbrella axis, temperatures of a ladder, PMF bins along a coordinate:
 #: written with ``count`` or as a list (a window every 0.036 deg around a dihedral).
@@ -63,7 +64,7 @@ def check_conditions(node, n_temperatures, window_counts):
 
 def check_swap_proposals(node, attempts, n_walkers):
     """Refuse ``pairs: any`` with more proposals per cycle (attempts × walkers³) than the bound."""
-    proposals = attempts * n_walkers**3
+    proposals = any_pairs_proposals(attempts, n_walkers)
     if proposals > MAX_SWAP_PROPOSALS:
         raise ProtocolError(f"{node.place} must propose at most {MAX_SWAP_PROPOSALS} swaps per cycle (with "
                             f"pairs 'any': attempts × walkers³; 'adjacent' proposes far fewer). "

@@ -18,18 +18,17 @@ Verdicts, per number:
 import json
 import logging
 import math
-import warnings
 from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
 
-from .exceptions import BoostWarning, InputError, RunFolderError
+from .exceptions import InputError, RunFolderError, warnings_to_log
 from .limits import MAX_SPEC_BYTES
 from .protocol import PlatformSettings, parse_protocol
 from .provenance import read_protocol_at_commit
 from .spec import read_text
-from .store import LEDGER, PROTOCOL, PROVENANCE, write_atomically
+from .store import LEDGER, PROTOCOL, RunFolder, write_atomically
 
 log = logging.getLogger("boost")
 
@@ -172,13 +171,9 @@ def _protocol_of_run(run):
 
 
 def _read_provenance(run):
-    path = run / PROVENANCE
-    if not path.is_file():
-        return {}
-    try:
-        return json.loads(read_text(path, "provenance"))
-    except json.JSONDecodeError as err:
-        raise RunFolderError(f"{path}: is not valid JSON ({err.msg} at line {err.lineno}).") from None
+    """A run folder's provenance record ({} for a folder made without one)."""
+    folder = RunFolder(run)
+    return folder.read_provenance() if folder.provenance.is_file() else {}
 
 
 def _check_run_folder(run, option):
@@ -240,13 +235,8 @@ def run_repeat(plan, *, progress=True):
 def _analyse(folder, role, settings):
     from .analysis import analyse_run
 
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", BoostWarning)
-        analysis = analyse_run(folder, **settings)
-    for warning in caught:
-        if issubclass(warning.category, BoostWarning):
-            log.warning("warning (%s, %s): %s", role, folder, warning.message)
-    return analysis
+    with warnings_to_log(f"warning ({role}, {folder})"):
+        return analyse_run(folder, **settings)
 
 
 def _write_record(plan, comparison):

@@ -4,108 +4,23 @@ Every method is this one loop: a single run has one condition, umbrella sampling
 walker per window and no swaps, replica exchange adds swaps between walkers.
 """
 
-import json
+import logging
 import sqlite3
 from contextlib import contextmanager
 from dataclasses import replace
-import logging
-import time
-from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 from tqdm import tqdm
 
-from .conditions import build_conditions, compute_reduced_potentials
-from .engine import PlatformChoice, choose_platform, derive_seeds, prepare_system
+from .conditions import compute_reduced_potentials
+from .engine import PlatformChoice, derive_seeds
 from .exceptions import BoostError, RunFolderError, SimulationError
-from .exchange import swap_any_pairs, swap_adjacent
-from .protocol import resolve_coordinates
-from .provenance import describe_environment, describe_git
-from .store import (LEDGER, PROTOCOL, PROVENANCE, FolderLock, FrameWriter, Ledger, check_folder_for,
-                    choose_checkpoint, claim_folder, dcd_frame_bytes, has_checkpoint, inspect_frames, scan_ledger,
-                    write_atomically, write_checkpoint)
-from .systems import load_system
-from .workers import WalkerSetup, open_workers, rank_walkers
+from .exchange import swap_for_cycle
+from .plan import describe_run, frame_bytes, ledger_header, make_plan
+from .store import FrameWriter, RunFolder, choose_checkpoint, write_checkpoint
+from .workers import WalkerSetup, open_workers
 
 log = logging.getLogger("boost")
-
-
-@dataclass(frozen=True)
-class Plan:
-    """Everything a run needs, built and checked before anything is written."""
-
-    protocol: object
-    built: object
-    coordinates: dict
-    conditions: tuple
-    system: object
-    umbrella_names: tuple
-    platform: object
-
-    @property
-    def n_walkers(self):
-        return len(self.conditions)
-
-
-def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, cores=None):
-    """Build the system and check every input; writes nothing.
-
-    ``platform``: a PlatformSettings overriding the protocol's. ``probe=False`` leaves an
-    automatic platform choice unmade (name 'auto'), so no MD step runs. ``workers``,
-    ``comm`` and ``cores`` (this rank's, see boost.workers.cores_of_rank) tell the
-    platform choice how the walkers will be laid out.
-    """
-    built = load_system(protocol.system, protocol.base_dir)
-    coordinates = resolve_coordinates(protocol, built.topology)
-    conditions = build_conditions(protocol)
-    system, umbrella_names = prepare_system(built, protocol, coordinates)
-    settings = platform or protocol.platform
-    if settings.name == "auto" and not probe:
-        choice = PlatformChoice("auto", {})
-    else:
-        n_walkers = len(conditions) if comm is None else len(rank_walkers(len(conditions), comm, 0))
-        choice = choose_platform(settings, system, built.positions, timestep=protocol.timestep,
-                                 n_walkers=n_walkers, cores=cores,
-                                 workers=settings.workers if workers is None else workers)
-    return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice)
-
-
-def _provenance(plan, seeds, swap_seed):
-    return {
-        "protocol_file": str(plan.protocol.path), "protocol_folder": str(plan.protocol.base_dir.resolve()),
-        "protocol_sha256": plan.protocol.sha256, "git": describe_git(plan.protocol.path),
-        "seed": plan.protocol.seed, "walker_seeds": seeds, "swap_seed": swap_seed,
-        "platform": plan.platform.name, "platform_properties": plan.platform.properties,
-        "platform_probe": [list(item) for item in plan.platform.probe],
-        **describe_environment(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-    }
-
-
-def _create_folder(folder, plan, seeds, swap_seed, run_id):
-    from openmm import app, unit
-
-    write_atomically(folder / PROTOCOL, plan.protocol.text)
-    write_atomically(folder / PROVENANCE, json.dumps(_provenance(plan, seeds, swap_seed), indent=2))
-    with open(folder / "topology.pdb", "w") as handle:
-        app.PDBFile.writeFile(plan.built.topology, plan.built.positions * unit.nanometer, handle)
-    ledger = Ledger(folder / LEDGER, coordinate_names=tuple(plan.coordinates))
-    ledger.create(plan.conditions, {
-        "coordinates": list(plan.coordinates),
-        "periodic": [c.periodic for c in plan.coordinates.values()],
-        "units": {name: c.unit for name, c in plan.coordinates.items()},
-        "umbrella": list(plan.umbrella_names), "n_walkers": plan.n_walkers,
-        "temperature": plan.protocol.temperature, "pressure": plan.protocol.pressure,
-        "timestep_ps": plan.protocol.timestep, "steps_per_cycle": plan.protocol.run.steps_per_cycle,
-        "protocol_sha256": plan.protocol.sha256, "protocol_text": plan.protocol.text, "run_id": run_id,
-        "frame_atoms": plan.built.topology.getNumAtoms(), "frame_bytes": _frame_bytes(plan),
-    })
-    return ledger
-
-
-def _frame_bytes(plan):
-    topology = plan.built.topology
-    return dcd_frame_bytes(topology.getNumAtoms(), topology.getPeriodicBoxVectors() is not None)
 
 
 class Scheduler:
@@ -116,7 +31,7 @@ class Scheduler:
         self.comm = comm
         self.cores = cores
         self.worker_count = workers if workers is not None else plan.protocol.platform.workers
-        self.folder = Path(folder)
+        self.folder = RunFolder(folder)
         self.progress = progress
         self.coordinate_list = list(plan.coordinates.values())
         self.umbrella_columns = [list(plan.coordinates).index(name) for name in plan.umbrella_names]
@@ -126,41 +41,49 @@ class Scheduler:
         self.ladder_shape = (len(protocol.temperatures), *[len(a.centres) for a in protocol.umbrella])
         self.seeds, self.swap_seed = derive_seeds(protocol.seed, plan.n_walkers)
         self.retries_left = protocol.run.retries
+        self.run_id = None                       # the folder's, once claimed
 
     def run(self):
-        """Run to the end; returns the folder. Resumes a partial run of the same protocol."""
-        check_folder_for(self.folder, self.plan.protocol.text)
-        self.run_id = claim_folder(self.folder)        # before the lock file: a foreign 'lock' is never opened
-        lock = FolderLock(self.folder)
+        """Run to the end; returns the folder path. Resumes a partial run of the same protocol."""
+        protocol = self.plan.protocol
+        self.folder.state_for(protocol.text)
+        self.run_id = self.folder.claim()        # before the lock file: a foreign 'lock' is never opened
+        lock = self.folder.lock()
         stale = lock.acquire()
         try:
             if stale:
                 log.info("taking over the run folder from %s, which is no longer running", stale)
-            resume = check_folder_for(self.folder, self.plan.protocol.text) == "same" \
-                and (self.folder / LEDGER).exists()
             with _disk_errors(self.folder):
-                self._run(resume)
+                self._run(self.folder.state_for(protocol.text) == "same")
         finally:
             lock.release()
-        return self.folder
+        return self.folder.path
 
     def _run(self, resume):
         plan, protocol = self.plan, self.plan.protocol
-        state = self._resume_point() if resume else None
-        if state == "complete":
-            log.info("%s: the run is already complete", self.folder)
-            return
+        state = None
         if resume:
+            state, notes = self.folder.resume_point(run_id=self.run_id, protocol_sha256=protocol.sha256,
+                                                    n_cycles=protocol.run.n_cycles)
+            if state == "complete":
+                log.info("%s: the run is already complete", self.folder)
+                return
+            for note in notes:
+                log.warning("warning: %s; resuming from checkpoints/%s (after cycle %d), the cycles after it are "
+                            "computed again", note, state.name, state.cycle)
             plan = self.plan = _with_recorded_platform(plan, self.folder)
-            ledger = Ledger(self.folder / LEDGER, coordinate_names=tuple(plan.coordinates))
+            ledger = self.folder.open_ledger(plan.coordinates)
         else:
-            ledger = _create_folder(self.folder, plan, self.seeds, self.swap_seed, self.run_id)
+            ledger = self.folder.lay_out(
+                protocol_text=protocol.text, provenance=describe_run(plan, self.seeds, self.swap_seed),
+                topology=plan.built.topology, positions_nm=plan.built.positions, conditions=plan.conditions,
+                ledger_header=ledger_header(plan, self.run_id))
         workers = open_workers(self._walker_setup(), self.worker_count, self.comm, self.cores)
         frames = None
         try:
             start, assignment, rng = self._restore(workers, ledger, state)
             if protocol.run.frame_every:
-                frames = FrameWriter(self.folder, plan.built.topology, plan.n_walkers,
+                frames = FrameWriter(self.folder.path, plan.built.topology, plan.n_walkers,
                                      timestep_ps=protocol.timestep,
                                      steps_between=protocol.run.frame_every * protocol.run.steps_per_cycle,
                                      counts=self._frames_on_disk(ledger))
@@ -171,47 +94,11 @@ class Scheduler:
             if frames:
                 frames.close()
 
-    def _resume_point(self):
-        """Verify the folder before resuming: 'complete', None (start afresh: nothing
-        recorded) or the newest intact checkpoint at or before the ledger's last intact cycle."""
-        n_recorded, first_bad, metadata = scan_ledger(self.folder)
-        if metadata.get("run_id") != self.run_id:
-            raise RunFolderError(f"{self.folder / LEDGER}: was not written by this run (its run id differs from "
-                                 "the identity file's); resume only the folder a run created.")
-        if metadata.get("protocol_sha256") != self.plan.protocol.sha256:
-            raise RunFolderError(f"{self.folder / LEDGER}: was recorded for another protocol (the folder's "
-                                 f"{PROTOCOL} was edited after the run started); choose another folder.")
-        if first_bad is None and n_recorded >= self.plan.protocol.run.n_cycles:
-            return "complete"
-        if n_recorded == 0 and not has_checkpoint(self.folder):
-            return None
-        last_intact = (n_recorded if first_bad is None else first_bad) - 1
-        try:
-            checkpoint, notes = choose_checkpoint(self.folder, run_id=self.run_id, last_intact_cycle=last_intact)
-        except RunFolderError:
-            if first_bad is None:
-                raise
-            raise RunFolderError(f"{self.folder / LEDGER}: cycle {first_bad} is damaged (its records fail their "
-                                 "checksum) and no intact checkpoint comes before it; this run cannot be "
-                                 "continued: start a new run folder.") from None
-        if first_bad is not None:
-            notes.insert(0, f"{LEDGER}: cycle {first_bad} is damaged")
-        for note in notes:
-            log.warning("warning: %s; resuming from checkpoints/%s (after cycle %d), the cycles after it are "
-                        "computed again", note, checkpoint.name, checkpoint.cycle)
-        return checkpoint
-
     def _frames_on_disk(self, ledger):
-        """Frames to keep per walker: the ledger's records, cut to what is intact on disk."""
-        records = ledger.frame_records(self.plan.n_walkers)
-        counts = []
-        for check in inspect_frames(self.folder, records, _frame_bytes(self.plan),
-                                    self.plan.built.topology.getNumAtoms()):
-            if check.problem:
-                log.warning("warning: %s; frames go on from frame %d", check.problem, check.usable)
-            if check.usable < check.recorded:
-                ledger.forget_frames_from(check.walker, check.usable)
-            counts.append(check.usable)
+        counts, notes = self.folder.frames_to_keep(ledger, self.plan.n_walkers, frame_bytes=frame_bytes(self.plan),
+                                                   n_atoms=self.plan.built.topology.getNumAtoms())
+        for note in notes:
+            log.warning("warning: %s", note)
         return counts
 
     def _walker_setup(self):
@@ -242,7 +129,7 @@ class Scheduler:
         return state.cycle + 1, assignment, rng
 
     def _checkpoint(self, workers, cycle, assignment, rng):
-        write_checkpoint(self.folder, cycle=cycle, walker_states=workers.checkpoints(), run_id=self.run_id,
+        write_checkpoint(self.folder.path, cycle=cycle, walker_states=workers.checkpoints(), run_id=self.run_id,
                          scheduler_state={"assignment": list(assignment), "rng": rng.bit_generator.state})
 
     def _loop(self, workers, ledger, frames, rng, start, assignment):
@@ -282,7 +169,7 @@ class Scheduler:
             raise SimulationError(f"{err} The run folder holds every cycle before it and can be resumed; "
                                   "try a smaller timestep, minimisation, or run.retries.") from None
         self.retries_left -= 1
-        state, notes = choose_checkpoint(self.folder, run_id=self.run_id, last_intact_cycle=cycle - 1)
+        state, notes = choose_checkpoint(self.folder.path, run_id=self.run_id, last_intact_cycle=cycle - 1)
         for note in notes:
             log.warning("warning: %s; going back to checkpoints/%s", note, state.name)
         start, assignment, rng = self._restore(workers, ledger, state)
@@ -300,12 +187,7 @@ class Scheduler:
         settings = self.plan.protocol.exchange
         if settings is None:
             return assignment, ()
-        if settings.pairs == "any":
-            new, tally = swap_any_pairs(u_kr, assignment, rng, attempts=settings.attempts * len(assignment) ** 3)
-        else:
-            new, tally = swap_adjacent(u_kr, assignment, self.ladder_shape, cycle, rng,
-                                         attempts=settings.attempts)
-        return new, tally.pairs
+        return swap_for_cycle(settings.pairs, settings.attempts, u_kr, assignment, self.ladder_shape, cycle, rng)
 
     def _evaluate(self, reports, assignment, cycle):
         plan = self.plan
@@ -332,15 +214,7 @@ class WalkerBlowUp(SimulationError):
 
 def _with_recorded_platform(plan, folder):
     """Resume on the platform the run started on, so a deterministic run stays bit-for-bit."""
-    path = Path(folder) / PROVENANCE
-    try:
-        provenance = json.loads(path.read_bytes())
-        recorded = PlatformChoice(provenance["platform"], provenance["platform_properties"],
-                                  tuple(tuple(item) for item in provenance.get("platform_probe", ())))
-    except (OSError, ValueError, KeyError, TypeError, AttributeError):
-        raise RunFolderError(f"{path}: is missing or damaged; it records the platform the run started on, which "
-                             "a resume must use: restore it, or start a new run folder.") from None
-    return replace(plan, platform=recorded)
+    return replace(plan, platform=PlatformChoice(*folder.recorded_platform()))
 
 
 @contextmanager
@@ -355,7 +229,7 @@ def _disk_errors(folder):
         raise RunFolderError(f"{folder}: cannot write ({reason}); the ledger keeps every complete cycle. "
                              "Free space or fix permissions, then run again to resume.") from None
     except sqlite3.DatabaseError:
-        raise RunFolderError(f"{Path(folder) / LEDGER}: is damaged (SQLite cannot use it); "
+        raise RunFolderError(f"{folder.ledger}: is damaged (SQLite cannot use it); "
                              "start a new run folder.") from None
 
 

@@ -314,7 +314,7 @@ def test_a_deleted_provenance_file_is_named_on_resume(runs, copy_of):
     folder = copy_of("partial")
     (folder / "provenance.json").unlink()
     result = boost("run", _protocol_file(folder), "-o", str(folder), "--quiet", cwd=folder.parent)
-    assert_one_line_error(result, r"provenance\.json: is missing or damaged; it records the platform")
+    assert_one_line_error(result, r"provenance\.json: is missing or damaged; it records how the run was made")
 
 
 @pytest.mark.parametrize("place", ["/proc/boost-run", "/sys/boost-run"])

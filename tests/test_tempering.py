@@ -20,7 +20,8 @@ from boost.analysis import analyse_run
 from boost.models import read_model
 from boost.protocol import load_protocol
 from boost.report import write_report
-from boost.scheduler import make_plan, run_protocol
+from boost.plan import make_plan
+from boost.scheduler import run_protocol
 from boost.spec import Node, load_yaml
 from boost.store import read_ledger
 from boost.units import MOLAR_GAS_CONSTANT

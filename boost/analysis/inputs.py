@@ -7,13 +7,11 @@ a warning; any other edit is refused, since the ledger's data were made without 
 """
 
 import warnings
-from pathlib import Path
 
 from ..exceptions import BoostWarning, RunFolderError
 from ..protocol import parse_protocol
 from ..spec import differing_paths, parse_yaml, read_text
-from ..store import (CHECKPOINTS, IDENTITY, PROTOCOL, inspect_frames, protocol_hash, read_checkpoint_file,
-                     read_ledger, read_run_id)
+from ..store import RunFolder, inspect_frames, protocol_hash, read_checkpoint_file, read_ledger, read_run_id
 from ..store.checkpoints import NEWEST
 
 #: Top-level protocol sections that may be edited between a run and its analysis.
@@ -22,9 +20,9 @@ EDITABLE_AFTER_RUN = ("basins", "analysis", "title")
 
 def load_run(folder):
     """The protocol of a run folder and its verified ledger (reduced potentials not read)."""
-    folder = Path(folder)
+    folder = RunFolder(folder)
     checkpoint_cycle = _checkpoint_cycle(folder)      # before the ledger: a running run only adds cycles
-    data = read_ledger(folder, reduced=False)
+    data = read_ledger(folder.path, reduced=False)
     if checkpoint_cycle is not None and checkpoint_cycle >= len(data.cycle_t):
         raise RunFolderError(f"{folder}: the ledger holds {len(data.cycle_t)} cycles but the run's checkpoint is "
                              f"at cycle {checkpoint_cycle}: cycles are missing from the ledger, so it cannot be "
@@ -35,7 +33,7 @@ def load_run(folder):
 
 
 def _protocol_of_run(folder, metadata):
-    path = folder / PROTOCOL
+    path = folder.protocol_copy
     recorded = metadata.get("protocol_text")
     if recorded is not None and protocol_hash(recorded) != metadata.get("protocol_sha256"):
         recorded = None
@@ -62,9 +60,10 @@ def _protocol_of_run(folder, metadata):
 
 def _checkpoint_cycle(folder):
     """The cycle of the run's intact newest checkpoint (None: no identity, none, or damaged)."""
-    if not (folder / IDENTITY).exists() or not (folder / CHECKPOINTS / NEWEST).exists():
+    newest = folder.checkpoints / NEWEST
+    if not folder.identity.exists() or not newest.exists():
         return None
-    checkpoint, _ = read_checkpoint_file(folder / CHECKPOINTS / NEWEST, read_run_id(folder))
+    checkpoint, _ = read_checkpoint_file(newest, read_run_id(folder.path))
     return None if checkpoint is None else checkpoint.cycle
 
 
@@ -72,7 +71,7 @@ def _report_frames(folder, data):
     meta = data.metadata
     if not any(data.frame_crcs) or "frame_bytes" not in meta:
         return
-    for check in inspect_frames(folder, data.frame_crcs, meta["frame_bytes"], meta["frame_atoms"]):
+    for check in inspect_frames(folder.path, data.frame_crcs, meta["frame_bytes"], meta["frame_atoms"]):
         if check.problem:
             warnings.warn(f"{check.problem} (frames are not used by this analysis; its numbers are unaffected).",
                           BoostWarning)

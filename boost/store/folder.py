@@ -167,3 +167,4 @@ class FolderLock:
             os.ftruncate(self.fd, 0)
             os.close(self.fd)
             self.fd = None
+

@@ -1,0 +1,86 @@
+"""The build stage: a protocol in, a Plan out (system, coordinates, conditions, platform),
+every input checked and nothing written. ``boost check`` stops here; ``boost run`` hands
+the plan to the scheduler."""
+
+import time
+from dataclasses import dataclass
+
+from .conditions import build_conditions
+from .engine import PlatformChoice, choose_platform, prepare_system
+from .protocol import resolve_coordinates
+from .provenance import describe_environment, describe_git
+from .store import dcd_frame_bytes
+from .systems import load_system
+from .workers import rank_walkers
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Everything a run needs, built and checked before anything is written."""
+
+    protocol: object
+    built: object
+    coordinates: dict
+    conditions: tuple
+    system: object
+    umbrella_names: tuple
+    platform: object
+
+    @property
+    def n_walkers(self):
+        return len(self.conditions)
+
+
+def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, cores=None):
+    """Build the system and check every input; writes nothing.
+
+    ``platform``: a PlatformSettings overriding the protocol's. ``probe=False`` leaves an
+    automatic platform choice unmade (name 'auto'), so no MD step runs. ``workers``,
+    ``comm`` and ``cores`` (this rank's, see boost.workers.cores_of_rank) tell the
+    platform choice how the walkers will be laid out.
+    """
+    built = load_system(protocol.system, protocol.base_dir)
+    coordinates = resolve_coordinates(protocol, built.topology)
+    conditions = build_conditions(protocol)
+    system, umbrella_names = prepare_system(built, protocol, coordinates)
+    settings = platform or protocol.platform
+    if settings.name == "auto" and not probe:
+        choice = PlatformChoice("auto", {})
+    else:
+        n_walkers = len(conditions) if comm is None else len(rank_walkers(len(conditions), comm, 0))
+        choice = choose_platform(settings, system, built.positions, timestep=protocol.timestep,
+                                 n_walkers=n_walkers, cores=cores,
+                                 workers=settings.workers if workers is None else workers)
+    return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice)
+
+
+def describe_run(plan, seeds, swap_seed):
+    """What provenance.json records of a run: protocol, seeds, platform, software, start time."""
+    return {
+        "protocol_file": str(plan.protocol.path), "protocol_folder": str(plan.protocol.base_dir.resolve()),
+        "protocol_sha256": plan.protocol.sha256, "git": describe_git(plan.protocol.path),
+        "seed": plan.protocol.seed, "walker_seeds": seeds, "swap_seed": swap_seed,
+        "platform": plan.platform.name, "platform_properties": plan.platform.properties,
+        "platform_probe": [list(item) for item in plan.platform.probe],
+        **describe_environment(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+    }
+
+
+def frame_bytes(plan):
+    """Bytes of one DCD frame of the plan's system."""
+    topology = plan.built.topology
+    return dcd_frame_bytes(topology.getNumAtoms(), topology.getPeriodicBoxVectors() is not None)
+
+
+def ledger_header(plan, run_id):
+    """The ledger's meta table of a new run (checked by its header digest ever after)."""
+    return {
+        "coordinates": list(plan.coordinates),
+        "periodic": [c.periodic for c in plan.coordinates.values()],
+        "units": {name: c.unit for name, c in plan.coordinates.items()},
+        "umbrella": list(plan.umbrella_names), "n_walkers": plan.n_walkers,
+        "temperature": plan.protocol.temperature, "pressure": plan.protocol.pressure,
+        "timestep_ps": plan.protocol.timestep, "steps_per_cycle": plan.protocol.run.steps_per_cycle,
+        "protocol_sha256": plan.protocol.sha256, "protocol_text": plan.protocol.text, "run_id": run_id,
+        "frame_atoms": plan.built.topology.getNumAtoms(), "frame_bytes": frame_bytes(plan),
+    }

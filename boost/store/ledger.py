@@ -225,15 +225,21 @@ def read_ledger(folder, *, reduced=True):
     when any check fails.
     """
     with _open_verified(folder) as (connection, path, metadata, conditions):
-        return _read(connection, path, metadata, conditions, reduced, stop_at_damage=False)[0]
+        data, _, first_bad = _read(connection, path, metadata, conditions, reduced)
+    if first_bad is not None:
+        raise LedgerDamage(f"{path}: cycle {first_bad} is damaged (its records fail their checksum); cycles 0 to "
+                           f"{first_bad - 1} are intact, but boost does not analyse a damaged ledger. Resuming "
+                           "the run recomputes damaged cycles after an intact checkpoint.", first_bad)
+    return data
 
 
 def scan_ledger(folder):
-    """Verify every record (reduced potentials included); returns (n_cycles, first_bad_cycle
-    or None, metadata). Header damage raises :class:`LedgerDamage`."""
+    """Verify every record (reduced potentials included) holding nothing of its size in
+    memory; returns (n_cycles, first_bad_cycle or None, metadata). Header damage raises
+    :class:`LedgerDamage`."""
     with _open_verified(folder) as (connection, path, metadata, conditions):
-        data, first_bad = _read(connection, path, metadata, conditions, True, stop_at_damage=True)
-        return len(data.cycle_t), first_bad, metadata
+        _, n_cycles, first_bad = _read(connection, path, metadata, conditions, True, keep_arrays=False)
+        return n_cycles, first_bad, metadata
 
 
 def read_ledger_metadata(folder):
@@ -321,9 +327,13 @@ def _verified_header(connection, path):
     return metadata, conditions
 
 
-def _read(connection, path, metadata, conditions, with_reduced, *, stop_at_damage):
-    """Arrays of every cycle, checked; with ``stop_at_damage`` the data stop before the first
-    damaged cycle and its index is returned, else damage raises LedgerDamage."""
+def _read(connection, path, metadata, conditions, with_reduced, *, keep_arrays=True):
+    """Every cycle's records, checked against their checksums.
+
+    Returns (LedgerData or None when ``keep_arrays`` is false, number of cycles recorded,
+    first damaged cycle or None). Without ``keep_arrays`` nothing the size of the ledger
+    is held in memory: that is how a resume verifies a ledger of any length.
+    """
     names = tuple(metadata["coordinates"])
     # numbers as floats; the checksums as the integers SQLite stores (0 and flagged when not one)
     cycles = _chunked(connection.execute(
@@ -335,8 +345,8 @@ def _read(connection, path, metadata, conditions, with_reduced, *, stop_at_damag
         "FROM cycles ORDER BY cycle"), 2, path, dtype=np.int64)
     n_cycles, n_walkers, n_conditions = len(cycles), metadata["n_walkers"], len(conditions)
     check = _Checks(cycles, stored, with_reduced)
-    table = np.zeros((n_cycles, n_walkers, 3 + len(names)))
-    u_trk = np.zeros((n_cycles if with_reduced else 0, n_walkers, n_conditions))
+    table = np.zeros((n_cycles if keep_arrays else 0, n_walkers, 3 + len(names)))
+    u_trk = np.zeros((n_cycles if with_reduced and keep_arrays else 0, n_walkers, n_conditions))
     quoted = "".join(f', "{name}"' for name in names)
     reduced = ", reduced" if with_reduced else ""
     cursor = connection.execute(f"SELECT cycle, walker, condition, potential, volume{quoted}{reduced} "
@@ -347,29 +357,27 @@ def _read(connection, path, metadata, conditions, with_reduced, *, stop_at_damag
         t, r = check.place(numbers[:, 0], n_cycles), check.place(numbers[:, 1], n_walkers)
         check.add_samples(numbers, t, r)
         ok = (t >= 0) & (r >= 0)
-        table[t[ok], r[ok]] = numbers[ok, 2:]
+        if keep_arrays:
+            table[t[ok], r[ok]] = numbers[ok, 2:]
         if with_reduced:
             u_rk = check.blobs([row[-1] for row in rows], n_conditions, t)
             check.add_reduced(numbers[:, 1], u_rk, t)
-            u_trk[t[ok], r[ok]] = u_rk[ok]
+            if keep_arrays:
+                u_trk[t[ok], r[ok]] = u_rk[ok]
     swaps = _chunked(connection.execute("SELECT * FROM swaps WHERE cycle < ? ORDER BY cycle", (n_cycles,)), 5, path)
     check.add_swaps(swaps, check.place(swaps[:, 0], n_cycles))
     first_bad = check.first_bad(n_walkers)
-    if first_bad is not None and not stop_at_damage:
-        raise LedgerDamage(f"{path}: cycle {first_bad} is damaged (its records fail their checksum); cycles 0 to "
-                           f"{first_bad - 1} are intact, but boost does not analyse a damaged ledger. Resuming "
-                           "the run recomputes damaged cycles after an intact checkpoint.", first_bad)
-    keep = n_cycles if first_bad is None else first_bad
+    if not keep_arrays:
+        return None, n_cycles, first_bad
     data = LedgerData(
         conditions=conditions, coordinate_names=names,
-        cycle_t=cycles[:keep, 0].astype(int), time_t=cycles[:keep, 1], production_t=cycles[:keep, 2].astype(bool),
-        condition_rt=table[:keep, :, 0].T.astype(int), potential_rt=np.ascontiguousarray(table[:keep, :, 1].T),
-        volume_rt=np.ascontiguousarray(table[:keep, :, 2].T),
-        values_rtc=np.ascontiguousarray(table[:keep, :, 3:].transpose(1, 0, 2)),
-        u_krt=np.ascontiguousarray(u_trk[:keep].transpose(2, 1, 0)),
-        swaps=swaps[(swaps[:, 0] >= 0) & (swaps[:, 0] < keep)].astype(int), metadata=metadata,
-        frame_crcs=_frame_crcs(connection, n_walkers, keep))
-    return data, first_bad
+        cycle_t=cycles[:, 0].astype(int), time_t=cycles[:, 1], production_t=cycles[:, 2].astype(bool),
+        condition_rt=table[:, :, 0].T.astype(int), potential_rt=np.ascontiguousarray(table[:, :, 1].T),
+        volume_rt=np.ascontiguousarray(table[:, :, 2].T),
+        values_rtc=np.ascontiguousarray(table[:, :, 3:].transpose(1, 0, 2)),
+        u_krt=np.ascontiguousarray(u_trk.transpose(2, 1, 0)),
+        swaps=swaps.astype(int), metadata=metadata, frame_crcs=_frame_crcs(connection, n_walkers, n_cycles))
+    return data, n_cycles, first_bad
 
 
 def _frame_crcs(connection, n_walkers, n_cycles):

@@ -1,6 +1,7 @@
 """The public API and the packaging: what ``import boost`` offers and what a wheel carries."""
 
 import inspect
+import re
 from importlib import import_module, metadata
 from pathlib import Path
 
@@ -80,3 +81,13 @@ def test_bundled_folders_in_an_installed_package_are_inside_it(tmp_path, monkeyp
     assert bundled.bundled_folder("protocols") == tmp_path / "protocols"      # not shipped there
     with pytest.raises(ValueError, match="no bundled 'data'"):
         bundled.bundled_folder("data")
+
+
+# -- the repository stands alone ---------------------------------------------------------
+def test_every_file_the_tests_cite_is_inside_the_project():
+    # a comment such as "tests/REFERENCES.md, harmonic well" must name a file of this repository
+    cited = {(path.name, name) for path in (REPO / "tests").glob("*.py")
+             for name in re.findall(r"[\w./-]+\.md\b", path.read_text(encoding="utf-8"))}
+    assert ("test_alanine.py", "tests/REFERENCES.md") in cited
+    missing = {(test, name) for test, name in cited if not (REPO / name).is_file()}
+    assert not missing, missing

@@ -162,9 +162,8 @@ def test_repeat_of_a_run_folder_is_identical(small_run, tmp_path):
     result = boost("repeat", str(small_run), "--quiet", cwd=tmp_path)
     assert result.returncode == 0, result.stderr
     rows = verdicts(result.stdout)
-    # the Reference platform is deterministic (deterministic platform, measured: DESIGN.md,
-    # "continues bit-for-bit on Reference"), so the same protocol and seed give every
-    # number bit for bit
+    # the Reference platform is deterministic (measured here: tests/REFERENCES.md,
+    # deterministic platforms), so the same protocol and seed give every number bit for bit
     assert rows and set(rows) == {"identical"}
     assert "population of basin left" in result.stdout and "PMF along x" in result.stdout
     repeat = tmp_path / "original-repeat"
@@ -197,7 +196,7 @@ def test_repeat_at_a_commit_runs_the_committed_text(git_project, tmp_path):
     result = boost("repeat", str(path), "--commit", "HEAD", "--against", str(original), "--quiet",
                    cwd=tmp_path)
     assert result.returncode == 0, result.stderr
-    assert set(verdicts(result.stdout)) == {"identical"}     # deterministic platform, measured
+    assert set(verdicts(result.stdout)) == {"identical"}     # deterministic platform (as above)
     assert head[:12] in result.stdout
     repeat = tmp_path / "original-repeat"
     assert (repeat / "protocol.yaml").read_text() == SMALL

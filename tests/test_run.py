@@ -86,7 +86,7 @@ def test_folder_of_another_protocol_is_refused_and_left_alone(small_run, write_p
 
 
 def test_same_seed_same_ledger(tmp_path, write_protocol, double_well_text):
-    # Reference platform with fixed seeds is deterministic (DESIGN.md, measured)
+    # Reference platform with fixed seeds is deterministic (measured here: tests/REFERENCES.md)
     protocol = load_protocol(write_protocol(double_well_text.replace("production: 5 ps", "production: 2 ps")))
     a = read_ledger(run_protocol(protocol, tmp_path / "a", progress=False))
     b = read_ledger(run_protocol(protocol, tmp_path / "b", progress=False))

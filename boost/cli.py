@@ -113,11 +113,13 @@ def run(protocol_file, folder, platform_name, threads, workers, quiet):
 
 @main.command()
 def systems():
-    """List the bundled systems a protocol can name."""
+    """List the bundled systems a protocol can name, and where the example protocols are."""
+    from .bundled import bundled_folder
     from .systems import list_bundled_systems
 
     for name, title, _ in list_bundled_systems():
         click.echo(f"{name:24s} {title}")
+    click.echo(f"example protocols: {bundled_folder('protocols')}")
 
 
 @main.command()

@@ -32,6 +32,7 @@ import numpy as np
 import openmm
 from openmm import app, unit
 
+from .bundled import bundled_folder
 from .exceptions import BoostError, InputError, ProtocolError, printable
 from .limits import MAX_TITLE_LENGTH
 from .spec import file_problem, load_yaml, read_text
@@ -87,9 +88,9 @@ class BuiltSystem:
 
 # -- public entry points --------------------------------------------------------------
 def bundled_systems_folder():
-    """The folder of bundled system specs: ``$BOOST_SYSTEMS`` or the repository's ``systems/``."""
+    """The folder of bundled system specs: ``$BOOST_SYSTEMS``, else :func:`boost.bundled.bundled_folder`."""
     override = os.environ.get("BOOST_SYSTEMS")
-    return Path(override) if override else Path(__file__).resolve().parents[1] / "systems"
+    return Path(override) if override else bundled_folder("systems")
 
 
 def list_bundled_systems():

@@ -1,4 +1,4 @@
-"""Shared fixtures: protocol files written into tmp_path, the repository's folders."""
+"""Shared fixtures: protocol files written into tmp_path, the test double well's protocol, the repository's folders."""
 
 import textwrap
 from pathlib import Path
@@ -26,25 +26,44 @@ def write_protocol(tmp_path):
     return write
 
 
-DOUBLE_WELL = """\
-protocol: 1
-title: test double well
-system:
-  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}
-seed: 5
-temperature: 300 K
-timestep: 2 fs
-coordinates:
-  x: {position: 0, axis: x}
-run:
-  cycle: 0.1 ps
-  equilibration: 1 ps
-  production: 5 ps
-  frame_every: 1 ps
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-"""
+# The test double well (5 kJ/mol, about 2 kT at 300 K): top-level key -> value text, or
+# key -> {entry: value text} for a block mapping. double_well_protocol() writes it out.
+_DOUBLE_WELL_KEYS = {
+    "protocol": "1",
+    "title": "test double well",
+    "system": {"model": "{name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}"},
+    "seed": "5",
+    "temperature": "300 K",
+    "timestep": "2 fs",
+    "coordinates": {"x": "{position: 0, axis: x}"},
+    "run": {"cycle": "0.1 ps", "equilibration": "1 ps", "production": "5 ps", "frame_every": "1 ps"},
+    "basins": {"left": "{x: [-1 nm, 0 nm]}", "right": "{x: [0 nm, 1 nm]}"},
+}
+
+
+def double_well_protocol(**changes):
+    """The test double well's protocol text with top-level keys changed.
+
+    Each keyword is a top-level protocol key. Text (or a number) replaces the key's value; a
+    dict changes a block mapping entry by entry (``run={"production": "2 ps"}``) or makes a new
+    one; None leaves a key or an entry out. New keys follow the others in the order given.
+    """
+    keys = {key: dict(value) if isinstance(value, dict) else value for key, value in _DOUBLE_WELL_KEYS.items()}
+    for key, value in changes.items():
+        if isinstance(value, dict) and isinstance(keys.get(key), dict):
+            keys[key].update(value)
+        else:
+            keys[key] = value
+    lines = []
+    for key, value in keys.items():
+        if isinstance(value, dict):
+            lines += [f"{key}:"] + [f"  {entry}: {text}" for entry, text in value.items() if text is not None]
+        elif value is not None:
+            lines.append(f"{key}: {value}")
+    return "\n".join(lines) + "\n"
+
+
+DOUBLE_WELL = double_well_protocol()
 
 
 @pytest.fixture

@@ -9,9 +9,10 @@ from boost.scheduler import run_protocol
 
 @pytest.mark.slow
 def test_phi_umbrella_delta_g_is_in_the_published_band(tmp_path, repo):
-    # source: REFERENCES.md — C7ax lies above C7eq in vacuum: about 2.3 kcal/mol for CHARMM22
-    # (Rosso, Abrams & Tuckerman, J. Phys. Chem. B 109, 4162 (2005)); Amber families
-    # ~1.5–3.5 kcal/mol (value from memory). A loose band, widened by 2 reported σ.
+    # source: tests/REFERENCES.md, capped alanine — C7eq is the gas-phase minimum for
+    # CHARMM22 (Rosso, Abrams & Tuckerman, J. Phys. Chem. B 109, 4162 (2005)); for Amber
+    # families C7ax lies ~1.5–3.5 kcal/mol above it (value from memory). A loose band,
+    # widened by 2 reported σ.
     protocol = load_protocol(repo / "protocols" / "alanine-phi-umbrella.yaml")
     analysis = analyse_run(run_protocol(protocol, tmp_path / "run", progress=False), energy_unit="kcal/mol")
     basins = analysis.basins

@@ -13,7 +13,7 @@ import sys
 import textwrap
 
 import pytest
-from conftest import DOUBLE_WELL
+from conftest import double_well_protocol
 
 from boost import systems
 from boost.exceptions import InputError, ProtocolError
@@ -101,9 +101,7 @@ SYSTEM_CASES = [
 def test_system_files_that_are_fifos_or_devices(system, make, message, tmp_path):
     if make == "fifo":
         os.mkfifo(tmp_path / "pipe.yaml")
-    text = DOUBLE_WELL.replace("system:\n  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, "
-                               "tilt: 1 kJ/mol}\n", f"system: {system.replace('NAME', 'pipe.yaml')}\n")
-    assert text != DOUBLE_WELL
+    text = double_well_protocol(system=system.replace("NAME", "pipe.yaml"))
     (tmp_path / "protocol.yaml").write_text(text)
     before = contents(tmp_path)
     assert_one_line_exit_2(boost("check", "protocol.yaml", cwd=tmp_path), message)

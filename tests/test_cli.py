@@ -3,6 +3,7 @@
 import os
 import subprocess
 import sys
+from pathlib import Path
 
 import pytest
 
@@ -114,3 +115,6 @@ def test_systems_lists_bundled(tmp_path):
     result = boost("systems", cwd=tmp_path)
     assert result.returncode == 0
     assert "alanine-vacuum" in result.stdout and "double-well" in result.stdout
+    # the last line points at the example protocols (here the source tree's protocols/)
+    examples = Path(result.stdout.splitlines()[-1].removeprefix("example protocols: "))
+    assert (examples / "alanine-phi-umbrella.yaml").is_file(), result.stdout

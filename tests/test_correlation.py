@@ -13,6 +13,7 @@ from boost.protocol import load_protocol
 from boost.reweight import decorrelate
 from boost.scheduler import run_protocol
 from boost.store import read_ledger
+from conftest import double_well_protocol
 
 from pymbar import timeseries  # after boost.reweight, which imports pymbar quietly
 
@@ -119,25 +120,9 @@ def test_bad_series_are_analysis_errors():
         detect_equilibration([1.0, 2.0])
 
 
-LEDGER_WELL = """\
-protocol: 1
-title: double well for the correlation checks
-system:
-  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}
-seed: 21
-temperature: 300 K
-timestep: 2 fs
-friction: 1/ps
-coordinates:
-  x: {position: 0, axis: x}
-run:
-  cycle: 0.02 ps
-  equilibration: 0.2 ps
-  production: 60 ps
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-"""
+LEDGER_WELL = double_well_protocol(title="double well for the correlation checks", seed=21, friction="1/ps",
+                                   run={"cycle": "0.02 ps", "equilibration": "0.2 ps", "production": "60 ps",
+                                        "frame_every": None})
 
 
 @pytest.fixture(scope="module")

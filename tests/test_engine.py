@@ -93,7 +93,8 @@ def test_temperature_change_rescales_velocities(alanine):
 
 
 def test_checkpoint_round_trip_is_bit_for_bit(alanine):
-    # OpenMM checkpoints continue bit-for-bit on the Reference platform (DESIGN.md, measured)
+    # OpenMM checkpoints continue bit-for-bit on the Reference platform (measured here:
+    # tests/REFERENCES.md, deterministic platforms)
     protocol, built, coordinates, system, names = alanine
     condition = Condition(0, 300.0, (0.0, 0.0), (150.0, 50.0))
     make = lambda: Walker(0, system, names, built.positions, None, condition, timestep=0.002, friction=1.0,

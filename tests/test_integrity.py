@@ -23,35 +23,16 @@ from boost.scheduler import run_protocol
 from boost.store import Ledger, LedgerDamage, read_ledger
 
 sys.path.insert(0, str(Path(__file__).parent))
+from conftest import double_well_protocol  # noqa: E402
 from test_cli import assert_one_line_error, boost  # noqa: E402
 
 # Two temperatures that swap, so checkpoints hold two walkers and the swap RNG; checkpoints
 # every 10 cycles, frames every 5; 110 cycles in all.
-PROTOCOL = """\
-protocol: 1
-title: integrity checks
-system:
-  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}
-seed: 7
-temperature: 300 K
-timestep: 2 fs
-platform: {name: Reference, workers: 1}
-coordinates:
-  x: {position: 0, axis: x}
-temperatures: [300 K, 400 K]
-exchange: {pairs: adjacent}
-run:
-  cycle: 0.1 ps
-  equilibration: 1 ps
-  production: 10 ps
-  frame_every: 0.5 ps
-  checkpoint_every: 1 ps
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-analysis:
-  uncertainty: {method: asymptotic}
-"""
+PROTOCOL = double_well_protocol(
+    title="integrity checks", seed=7, platform="{name: Reference, workers: 1}",
+    temperatures="[300 K, 400 K]", exchange="{pairs: adjacent}",
+    run={"production": "10 ps", "frame_every": "0.5 ps", "checkpoint_every": "1 ps"},
+    analysis={"uncertainty": "{method: asymptotic}"})
 N_CYCLES = 110
 KILLED_AT = 73          # the partial run's ledger ends at cycle 72; its checkpoints are at 69 and 59
 

@@ -12,7 +12,7 @@ import sys
 import tracemalloc
 
 import pytest
-from conftest import DOUBLE_WELL
+from conftest import DOUBLE_WELL, double_well_protocol
 
 from boost.exceptions import InputError, ProtocolError
 from boost.limits import (MAX_CONDITIONS, MAX_COUNT, MAX_SPEC_BYTES, MAX_SWAP_ATTEMPTS, MAX_SWAP_PROPOSALS,
@@ -20,27 +20,21 @@ from boost.limits import (MAX_CONDITIONS, MAX_COUNT, MAX_SPEC_BYTES, MAX_SWAP_AT
 from boost.protocol import load_protocol, parse_protocol
 
 PATH = "protocol.yaml"
-DIHEDRAL = "  phi: {dihedral: [0, 1, 2, 3]}\n  psi: {dihedral: [1, 2, 3, 4]}\n"
+DIHEDRALS = {"phi": "{dihedral: [0, 1, 2, 3]}", "psi": "{dihedral: [1, 2, 3, 4]}"}
 
 
-def protocol(extra="", old=None, new=None, dihedrals=False):
-    text = DOUBLE_WELL if old is None else DOUBLE_WELL.replace(old, new, 1)
-    assert old is None or old in DOUBLE_WELL, old
-    if dihedrals:
-        text = text.replace("  x: {position: 0, axis: x}\n", "  x: {position: 0, axis: x}\n" + DIHEDRAL)
-    return text + extra
+def protocol(dihedrals=False, **changes):
+    """The test double well with ``changes`` (see conftest), and dihedrals phi and psi if asked."""
+    return double_well_protocol(**changes, **({"coordinates": DIHEDRALS} if dihedrals else {}))
 
 
 def grid(*counts, temperatures=1):
     """Umbrella windows along x (and y) with these counts, times a ladder of ``temperatures``."""
-    text = "coordinates:\n  x: {position: 0, axis: x}\n  y: {position: 0, axis: y}\n" if len(counts) > 1 else ""
-    text += "umbrella:\n"
-    for name, count in zip("xy", counts):
-        text += f"  {name}: {{centres: {{from: -1 nm, to: 1 nm, count: {count}}}, spring: 100 kJ/mol/nm**2}}\n"
-    if temperatures > 1:
-        text += f"temperatures: {{lowest: 300 K, highest: 600 K, count: {temperatures}}}\n"
-    body = DOUBLE_WELL.replace("coordinates:\n  x: {position: 0, axis: x}\n", "") if len(counts) > 1 else DOUBLE_WELL
-    return body + text
+    umbrella = {name: f"{{centres: {{from: -1 nm, to: 1 nm, count: {count}}}, spring: 100 kJ/mol/nm**2}}"
+                for name, count in zip("xy", counts)}
+    ladder = f"{{lowest: 300 K, highest: 600 K, count: {temperatures}}}" if temperatures > 1 else None
+    return protocol(coordinates={"y": "{position: 0, axis: y}" if len(counts) > 1 else None},
+                    umbrella=umbrella, temperatures=ladder)
 
 
 def refused(text, pattern):
@@ -83,22 +77,22 @@ def test_walker_limit_and_the_largest_accepted_ladder():
 
 def test_a_list_of_centres_longer_than_the_axis_limit_is_refused_before_reading_it():
     centres = ", ".join(["0 nm"] * (MAX_COUNT + 1))        # identical items: reading them would fail otherwise
-    refused(protocol(f"umbrella:\n  x: {{centres: [{centres}], spring: 1 kJ/mol/nm**2}}\n"),
+    refused(protocol(umbrella={"x": f"{{centres: [{centres}], spring: 1 kJ/mol/nm**2}}"}),
             rf"umbrella\.x\.centres must be a list of at most {MAX_COUNT} items\. Got {MAX_COUNT + 1} items")
 
 
 def test_a_temperature_list_longer_than_the_limit_is_refused():
     ladder = ", ".join(f"{300 + i} K" for i in range(MAX_COUNT + 1))
-    refused(protocol(f"temperatures: [{ladder}]\n"), rf"temperatures must be a list of at most {MAX_COUNT} items")
+    refused(protocol(temperatures=f"[{ladder}]"), rf"temperatures must be a list of at most {MAX_COUNT} items")
 
 
 # -- swaps ---------------------------------------------------------------------------
 def test_swap_attempts_per_cycle_are_bounded():
-    ladder = "temperatures: [300 K, 400 K]\n"
-    refused(protocol(ladder + "exchange: {attempts: 1000000000}\n"),
+    ladder = "[300 K, 400 K]"
+    refused(protocol(temperatures=ladder, exchange="{attempts: 1000000000}"),
             rf"exchange\.attempts must be a whole number of at least 1 and at most {MAX_SWAP_ATTEMPTS}\. "
             r"Got 1000000000 instead")
-    accepted = parse_protocol(protocol(ladder + f"exchange: {{attempts: {MAX_SWAP_ATTEMPTS}}}\n"), PATH)
+    accepted = parse_protocol(protocol(temperatures=ladder, exchange=f"{{attempts: {MAX_SWAP_ATTEMPTS}}}"), PATH)
     assert accepted.exchange.attempts == MAX_SWAP_ATTEMPTS
 
 
@@ -108,19 +102,21 @@ def test_swap_proposals_of_any_pairs_are_bounded():
         walkers -= 1
     while (walkers + 1) ** 3 <= MAX_SWAP_PROPOSALS:
         walkers += 1                                   # the most walkers with attempts x walkers^3 in bounds
-    ladder = "temperatures: {lowest: 300 K, highest: 600 K, count: %d}\nexchange: {pairs: %s}\n"
-    assert parse_protocol(protocol(ladder % (walkers, "any")), PATH).exchange.pairs == "any"
-    message = refused(protocol(ladder % (walkers + 1, "any")),
+    def ladder(count, pairs):
+        return protocol(temperatures=f"{{lowest: 300 K, highest: 600 K, count: {count}}}", exchange=f"{{pairs: {pairs}}}")
+
+    assert parse_protocol(ladder(walkers, "any"), PATH).exchange.pairs == "any"
+    message = refused(ladder(walkers + 1, "any"),
                       rf"protocol\.yaml: exchange must propose at most {MAX_SWAP_PROPOSALS} swaps per cycle")
     assert f"1 × {walkers + 1}³ = {(walkers + 1) ** 3} instead" in message
-    parse_protocol(protocol(ladder % (walkers + 1, "adjacent")), PATH)     # neighbours only: no bound met
+    parse_protocol(ladder(walkers + 1, "adjacent"), PATH)     # neighbours only: no bound met
 
 
 # -- title ---------------------------------------------------------------------------
 def test_title_length_is_bounded_and_a_long_title_is_not_printed():
     at_limit = "t" * MAX_TITLE_LENGTH
-    assert parse_protocol(protocol(old="title: test double well", new=f"title: {at_limit}"), PATH).title == at_limit
-    message = refused(protocol(old="title: test double well", new=f"title: {at_limit}t"),
+    assert parse_protocol(protocol(title=at_limit), PATH).title == at_limit
+    message = refused(protocol(title=f"{at_limit}t"),
                       rf"title must be at most {MAX_TITLE_LENGTH} characters long\. "
                       rf"Got {MAX_TITLE_LENGTH + 1} characters instead")
     assert "ttt" not in message
@@ -129,7 +125,7 @@ def test_title_length_is_bounded_and_a_long_title_is_not_printed():
 @pytest.mark.parametrize("escaped, code", [(r"\0", "U+0000"), (r"\r", "U+000D"), (r"\e[2J", "U+001B"),
                                            (r"\u202e", "U+202E"), (r"\n", "U+000A"), (r"\t", "U+0009")])
 def test_title_with_a_control_character_is_refused_without_echoing_it(escaped, code):
-    message = refused(protocol(old="title: test double well", new=f'title: "zq{escaped}zq"'),
+    message = refused(protocol(title=f'"zq{escaped}zq"'),
                       rf"title must be printable text on one line \(no control characters\)\. "
                       rf"Got U\+{code[2:]} at character 3 instead")
     assert message.isprintable() and "zq" not in message
@@ -137,7 +133,7 @@ def test_title_with_a_control_character_is_refused_without_echoing_it(escaped, c
 
 def test_title_with_other_spaces_and_letters_is_kept():
     title = "ΔG of alanine\u00a0φ/ψ"          # a no-break space is a space, not a control character
-    assert parse_protocol(protocol(old="title: test double well", new=f"title: {title}"), PATH).title == title
+    assert parse_protocol(protocol(title=title), PATH).title == title
 
 
 def test_a_protocol_file_larger_than_the_limit_is_refused_unread(tmp_path):
@@ -152,20 +148,19 @@ def test_a_protocol_file_larger_than_the_limit_is_refused_unread(tmp_path):
 
 
 # -- run intervals -------------------------------------------------------------------
-@pytest.mark.parametrize("old, new, pattern", [
-    ("frame_every: 1 ps", "frame_every: 0 ps",
+@pytest.mark.parametrize("run, pattern", [
+    ({"frame_every": "0 ps"},
      r"run\.frame_every must be at least one cycle \(0\.1 ps\) \(leave it out for no frames\)\. Got '0 ps'"),
-    ("frame_every: 1 ps", "checkpoint_every: 0 ps", r"run\.checkpoint_every must be at least one cycle \(0\.1 ps\)"),
+    ({"frame_every": None, "checkpoint_every": "0 ps"}, r"run\.checkpoint_every must be at least one cycle \(0\.1 ps\)"),
 ])
-def test_zero_intervals_are_refused(old, new, pattern):
-    refused(protocol(old=old, new=new), pattern)
+def test_zero_intervals_are_refused(run, pattern):
+    refused(protocol(run=run), pattern)
 
 
 def test_intervals_of_one_cycle_and_no_frames_are_accepted():
-    run = parse_protocol(protocol(old="frame_every: 1 ps", new="frame_every: 0.1 ps\n  checkpoint_every: 0.1 ps"),
-                         PATH).run
+    run = parse_protocol(protocol(run={"frame_every": "0.1 ps", "checkpoint_every": "0.1 ps"}), PATH).run
     assert (run.frame_every, run.checkpoint_every) == (1, 1)
-    assert parse_protocol(protocol(old="  frame_every: 1 ps\n", new=""), PATH).run.frame_every == 0
+    assert parse_protocol(protocol(run={"frame_every": None}), PATH).run.frame_every == 0
 
 
 # -- windows that are the same modulo the period ------------------------------------------
@@ -175,29 +170,29 @@ def test_intervals_of_one_cycle_and_no_frames_are_accepted():
     ("[180 deg, 0 deg, -180 deg]", "centres[0] (180 deg)", "centres[2] (-180 deg)"),
 ])
 def test_dihedral_windows_360_deg_apart_are_one_window(centres, first, second):
-    text = protocol(f"umbrella:\n  phi: {{centres: {centres}, spring: 100 kJ/mol/rad**2}}\n", dihedrals=True)
+    text = protocol(umbrella={"phi": f"{{centres: {centres}, spring: 100 kJ/mol/rad**2}}"}, dihedrals=True)
     message = refused(text, r"umbrella\.phi must be windows that differ in centre \(modulo 360 deg on a dihedral\) "
                             r"or spring")
     assert f"Got {first} and {second} with the same spring instead" in message
 
 
 def test_duplicate_windows_on_one_axis_of_a_dihedral_grid():
-    text = protocol("umbrella:\n  phi: {centres: [-60 deg, 60 deg], spring: 100 kJ/mol/rad**2}\n"
-                    "  psi: {centres: [-180 deg, 0 deg, 180 deg], spring: 100 kJ/mol/rad**2}\n", dihedrals=True)
+    text = protocol(umbrella={"phi": "{centres: [-60 deg, 60 deg], spring: 100 kJ/mol/rad**2}",
+                              "psi": "{centres: [-180 deg, 0 deg, 180 deg], spring: 100 kJ/mol/rad**2}"}, dihedrals=True)
     refused(text, r"umbrella\.psi must be windows that differ in centre \(modulo 360 deg")
 
 
 def test_dihedral_windows_that_differ_are_accepted():
-    text = protocol("umbrella:\n  phi: {centres: {from: -180 deg, to: 170 deg, count: 36}, spring: 100 kJ/mol/rad**2}\n"
-                    "  psi: {centres: [-180 deg, 180 deg], spring: [100 kJ/mol/rad**2, 200 kJ/mol/rad**2]}\n",
+    text = protocol(umbrella={"phi": "{centres: {from: -180 deg, to: 170 deg, count: 36}, spring: 100 kJ/mol/rad**2}",
+                              "psi": "{centres: [-180 deg, 180 deg], spring: [100 kJ/mol/rad**2, 200 kJ/mol/rad**2]}"},
                     dihedrals=True)
     accepted = parse_protocol(text, PATH)
     assert accepted.n_windows == 36 * 2
 
 
 def test_a_distance_axis_is_not_periodic():
-    accepted = parse_protocol(protocol("umbrella:\n  x: {centres: [0 nm, 6.283185307179586 nm], "
-                                       "spring: 1 kJ/mol/nm**2}\n"), PATH)
+    accepted = parse_protocol(protocol(umbrella={"x": "{centres: [0 nm, 6.283185307179586 nm], spring: 1 kJ/mol/nm**2}"}),
+                              PATH)
     assert accepted.n_windows == 2
 
 
@@ -225,7 +220,7 @@ def test_check_of_a_huge_grid_fails_fast_in_one_line(write_protocol, tmp_path):
 
 
 def test_run_with_a_control_character_in_the_title_writes_nothing(write_protocol, tmp_path):
-    path = write_protocol(protocol(old="title: test double well", new='title: "x\\e]0;owned\\a\\r"'))
+    path = write_protocol(protocol(title='"x\\e]0;owned\\a\\r"'))
     stderr = assert_one_line_exit_2(boost("run", str(path), "--quiet", cwd=tmp_path), r"title must be printable")
     assert "\x1b" not in stderr and "\r" not in stderr and "owned" not in stderr
     assert sorted(p.name for p in tmp_path.iterdir()) == ["protocol.yaml"]

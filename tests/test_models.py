@@ -16,8 +16,9 @@ from boost.units import MOLAR_GAS_CONSTANT
 
 FILE = "system.yaml"
 
-# source: Müller & Brown, Theor. Chim. Acta 53, 75 (1979), stationary points as listed
-# in REFERENCES.md (surface units): (kind, x, y, V).
+# source: Müller & Brown, Theor. Chim. Acta 53, 75 (1979); stationary points computed from
+# the published parameters (tests/REFERENCES.md, Müller–Brown surface), in surface units:
+# (kind, x, y, V).
 MB_PUBLISHED = [
     ("minimum", -0.558224, 1.441726, -146.6995),
     ("minimum", 0.623499, 0.028038, -108.1667),
@@ -155,7 +156,7 @@ def test_double_well_starts_in_left_well():
 
 @pytest.mark.parametrize("kind, x, y, energy", MB_PUBLISHED)
 def test_muller_brown_stationary_points_match_published(kind, x, y, energy):
-    # source: Müller & Brown, Theor. Chim. Acta 53, 75 (1979) (values in REFERENCES.md);
+    # source: Müller & Brown, Theor. Chim. Acta 53, 75 (1979) (tests/REFERENCES.md);
     # started from the published point rounded to one decimal, on a scaled surface.
     built = model(**SCALED_MB)
     guess = (round(x, 1) * built.length_scale, round(y, 1) * built.length_scale)

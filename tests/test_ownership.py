@@ -10,10 +10,10 @@ import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).parent))
-from conftest import DOUBLE_WELL  # noqa: E402
+from conftest import double_well_protocol  # noqa: E402
 from test_cli import assert_one_line_error, boost  # noqa: E402
 
-SHORT = DOUBLE_WELL.replace("production: 5 ps", "production: 1 ps")
+SHORT = double_well_protocol(run={"production": "1 ps"})
 
 
 def snapshot(folder):

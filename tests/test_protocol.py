@@ -6,6 +6,7 @@ import pytest
 
 from boost.exceptions import InputError, ProtocolError
 from boost.protocol import load_protocol, parse_protocol
+from conftest import double_well_protocol
 
 
 def edit(text, old, new):
@@ -24,13 +25,9 @@ def test_valid_protocol_reads_units(write_protocol, double_well_text):
     assert protocol.temperatures == (300.0,) and protocol.umbrella == ()
 
 
-def test_umbrella_and_ladder(write_protocol, double_well_text):
-    text = double_well_text + """\
-umbrella:
-  x: {centres: {from: -0.15 nm, to: 0.15 nm, count: 7}, spring: 500 kJ/mol/nm**2}
-temperatures: {lowest: 300 K, highest: 600 K, count: 4}
-exchange: {pairs: adjacent}
-"""
+def test_umbrella_and_ladder(write_protocol):
+    text = double_well_protocol(umbrella={"x": "{centres: {from: -0.15 nm, to: 0.15 nm, count: 7}, spring: 500 kJ/mol/nm**2}"},
+                                temperatures="{lowest: 300 K, highest: 600 K, count: 4}", exchange="{pairs: adjacent}")
     protocol = load_protocol(write_protocol(text))
     axis = protocol.umbrella[0]
     assert len(axis.centres) == 7 and axis.centres[0] == pytest.approx(-0.15)
@@ -167,16 +164,17 @@ BAD_COORDINATES = [
 
 
 @pytest.mark.parametrize("coordinate, extra, message", BAD_COORDINATES)
-def test_bad_windows_and_basins(write_protocol, double_well_text, coordinate, extra, message):
-    text = double_well_text.replace("x: {position: 0, axis: x}", "x: {position: 0, axis: x}\n  " + coordinate)
-    text = text[:text.index("basins:")] + extra
+def test_bad_windows_and_basins(write_protocol, coordinate, extra, message):
+    name, value = coordinate.split(": ", 1)
+    text = double_well_protocol(coordinates={name: value}, basins=None) + extra
     with pytest.raises(ProtocolError, match=message):
         load_protocol(write_protocol(text))
 
 
-def test_disjoint_wrapped_basins_are_fine(write_protocol, double_well_text):
-    text = double_well_text.replace("x: {position: 0, axis: x}", "x: {position: 0, axis: x}\n  p: {dihedral: [0, 0, 0, 0]}")
-    text = text[:text.index("basins:")] + "basins:\n  one: {p: [150 deg, -150 deg]}\n  two: {p: [-150 deg, 150 deg]}\n"
+def test_disjoint_wrapped_basins_are_fine(write_protocol):
+    text = double_well_protocol(coordinates={"p": "{dihedral: [0, 0, 0, 0]}"},
+                                basins={"left": None, "right": None, "one": "{p: [150 deg, -150 deg]}",
+                                        "two": "{p: [-150 deg, 150 deg]}"})
     assert set(load_protocol(write_protocol(text)).basins) == {"one", "two"}
 
 
@@ -190,7 +188,7 @@ def test_uncertainty_settings_are_read(write_protocol, double_well_text):
     protocol = load_protocol(write_protocol(double_well_text))
     assert (protocol.analysis.uncertainty.method, protocol.analysis.uncertainty.resamples,
             protocol.analysis.uncertainty.block_cycles) == ("auto", 200, 0)
-    text = double_well_text + "analysis: {uncertainty: {method: bootstrap, resamples: 50, block: 1.2 ps}}\n"
+    text = double_well_protocol(analysis="{uncertainty: {method: bootstrap, resamples: 50, block: 1.2 ps}}")
     settings = load_protocol(write_protocol(text)).analysis.uncertainty
     assert (settings.method, settings.resamples, settings.block_cycles) == ("bootstrap", 50, 12)  # 0.1 ps cycles
 
@@ -200,9 +198,9 @@ def test_missing_file_is_input_error(tmp_path):
         load_protocol(tmp_path / "nowhere.yaml")
 
 
-def test_required_key_missing(write_protocol, double_well_text):
+def test_required_key_missing(write_protocol):
     with pytest.raises(ProtocolError, match=r"protocol\.yaml: seed is required but missing"):
-        load_protocol(write_protocol(edit(double_well_text, "seed: 5\n", "")))
+        load_protocol(write_protocol(double_well_protocol(seed=None)))
 
 
 def test_top_level_must_be_mapping(tmp_path):
@@ -212,7 +210,6 @@ def test_top_level_must_be_mapping(tmp_path):
 
 def test_the_default_checkpoint_interval_fits_any_cycle(write_protocol, double_well_text):
     # a cycle that does not divide 10 ps must not make the key the user never wrote an error
-    text = double_well_text.replace("cycle: 0.1 ps", "cycle: 3 ps").replace("production: 5 ps", "production: 30 ps")
-    text = text.replace("equilibration: 1 ps", "equilibration: 3 ps").replace("frame_every: 1 ps", "frame_every: 3 ps")
+    text = double_well_protocol(run={"cycle": "3 ps", "equilibration": "3 ps", "production": "30 ps", "frame_every": "3 ps"})
     assert load_protocol(write_protocol(text)).run.checkpoint_every == 3          # 9 ps, nearest to 10 ps
     assert load_protocol(write_protocol(double_well_text)).run.checkpoint_every == 100

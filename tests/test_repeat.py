@@ -18,11 +18,18 @@ from boost.repeat import Headline, compare_analyses, judge
 from boost.scheduler import run_protocol
 from boost.exceptions import InputError
 
-from conftest import DOUBLE_WELL
+from conftest import double_well_protocol
 
 BOOST = [sys.executable, "-m", "boost.cli"]
-# the small double well on the Reference platform, with PMF bins so every kind of number appears
-SMALL = DOUBLE_WELL + "platform: Reference\nanalysis:\n  bins: {x: {from: -0.2 nm, to: 0.2 nm, count: 8}}\n"
+
+
+def small(**changes):
+    """The small double well on the Reference platform, with PMF bins so every kind of number appears."""
+    return double_well_protocol(platform="Reference", analysis={"bins": "{x: {from: -0.2 nm, to: 0.2 nm, count: 8}}"},
+                                **changes)
+
+
+SMALL = small()
 VERDICT = re.compile(r"\s(identical|agrees|differs)$")
 
 
@@ -73,7 +80,7 @@ def test_describe_git_follows_the_work_tree(git_project):
     # source: git itself (rev-parse HEAD) for the sha; the file is committed and unchanged
     assert describe_git(path) == {"commit": head, "path_in_repo": "protocols/well.yaml",
                                   "uncommitted_changes": False}
-    path.write_text(SMALL.replace("seed: 5", "seed: 6"))
+    path.write_text(small(seed=6))
     assert describe_git(path)["uncommitted_changes"] is True
     git(project, "add", "protocols/well.yaml")              # staged is still not committed
     assert describe_git(path)["uncommitted_changes"] is True
@@ -107,7 +114,7 @@ def test_describe_git_gives_up_on_a_git_that_hangs(tmp_path, monkeypatch):
 
 def test_read_protocol_at_commit_and_its_errors(git_project):
     project, path, head = git_project
-    path.write_text(SMALL.replace("seed: 5", "seed: 6"))
+    path.write_text(small(seed=6))
     assert read_protocol_at_commit(path, "HEAD") == (SMALL, head)
     with pytest.raises(InputError, match=r"well\.yaml: --commit must name a commit.*Got 'no-such-rev'"):
         read_protocol_at_commit(path, "no-such-rev")
@@ -162,9 +169,8 @@ def test_repeat_of_a_run_folder_is_identical(small_run, tmp_path):
     result = boost("repeat", str(small_run), "--quiet", cwd=tmp_path)
     assert result.returncode == 0, result.stderr
     rows = verdicts(result.stdout)
-    # the Reference platform is deterministic (deterministic platform, measured: DESIGN.md,
-    # "continues bit-for-bit on Reference"), so the same protocol and seed give every
-    # number bit for bit
+    # the Reference platform is deterministic (measured here: tests/REFERENCES.md,
+    # deterministic platforms), so the same protocol and seed give every number bit for bit
     assert rows and set(rows) == {"identical"}
     assert "population of basin left" in result.stdout and "PMF along x" in result.stdout
     repeat = tmp_path / "original-repeat"
@@ -179,9 +185,7 @@ def test_repeat_finds_files_next_to_the_original_protocol(tmp_path):
     project.mkdir()
     (project / "well-system.yaml").write_text(
         "model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}\n")
-    text = re.sub(r"system:\n  model: .*\n", "system: well-system.yaml\n", SMALL)
-    assert "system: well-system.yaml" in text
-    (project / "well.yaml").write_text(text)
+    (project / "well.yaml").write_text(small(system="well-system.yaml"))
     run = run_protocol(load_protocol(project / "well.yaml"), tmp_path / "runs" / "first", progress=False)
     elsewhere = tmp_path / "elsewhere"
     elsewhere.mkdir()
@@ -193,11 +197,11 @@ def test_repeat_finds_files_next_to_the_original_protocol(tmp_path):
 def test_repeat_at_a_commit_runs_the_committed_text(git_project, tmp_path):
     project, path, head = git_project
     original = run_protocol(load_protocol(path), tmp_path / "original", progress=False)
-    path.write_text(SMALL.replace("seed: 5", "seed: 6"))      # edited after the commit
+    path.write_text(small(seed=6))      # edited after the commit
     result = boost("repeat", str(path), "--commit", "HEAD", "--against", str(original), "--quiet",
                    cwd=tmp_path)
     assert result.returncode == 0, result.stderr
-    assert set(verdicts(result.stdout)) == {"identical"}     # deterministic platform, measured
+    assert set(verdicts(result.stdout)) == {"identical"}     # deterministic platform (as above)
     assert head[:12] in result.stdout
     repeat = tmp_path / "original-repeat"
     assert (repeat / "protocol.yaml").read_text() == SMALL
@@ -211,7 +215,7 @@ def test_repeat_at_a_commit_runs_the_committed_text(git_project, tmp_path):
 
 def test_repeat_against_another_seed_differs(small_run, tmp_path):
     other = tmp_path / "seed-6.yaml"
-    other.write_text(SMALL.replace("seed: 5", "seed: 6"))
+    other.write_text(small(seed=6))
     against = run_protocol(load_protocol(other), tmp_path / "seed-6", progress=False)
     result = boost("repeat", str(small_run), "--against", str(against), "-o", "new", "--quiet", cwd=tmp_path)
     rows = verdicts(result.stdout)

@@ -97,7 +97,7 @@ def resume_after_kills(tmp_path, targets, text=TEMPERING):
 
 
 def test_kill_nine_three_times_then_resume_is_bit_for_bit(tmp_path, reference):
-    # Reference platform: a checkpoint continues bit-for-bit (deterministic platform, measured in DESIGN.md)
+    # Reference platform: a checkpoint continues bit-for-bit (measured here: tests/REFERENCES.md)
     rng = np.random.default_rng(int(time.time()))
     targets = rng.choice(np.arange(5, 400), size=3, replace=False)
     folder, kills = resume_after_kills(tmp_path, targets)

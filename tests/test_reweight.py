@@ -23,7 +23,7 @@ SAMPLES_PER_WINDOW = 4000
 
 def _umbrella_data(seed):
     """Exact samples of each window: Gaussian, mean k x_i/(K+k), variance 1/(K+k)."""
-    # source: exact (product of Gaussians); also REFERENCES.md, umbrella windows
+    # source: exact (product of Gaussians; tests/REFERENCES.md, umbrella windows on a harmonic well)
     rng = np.random.default_rng(seed)
     total = WELL_K + SPRING_K
     x_n = np.concatenate(
@@ -100,7 +100,7 @@ def test_wrapper_equals_direct_pymbar_call():
 
 @pytest.mark.parametrize("n_dims", [1, 3])
 def test_harmonic_wells_free_energy_difference(n_dims):
-    # source: exact — Δf = ½ ln(k2/k1) per dimension (REFERENCES.md, harmonic well)
+    # source: exact — Δf = ½ ln(k2/k1) per dimension (tests/REFERENCES.md, harmonic well)
     rng = np.random.default_rng(5 + n_dims)
     k = np.array([1.0, 4.0])
     n_per = 3000

@@ -14,26 +14,11 @@ from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
 from boost.spec import Node
 from boost.store import read_ledger
+from conftest import double_well_protocol
 
-LOW_WELL = """\
-protocol: 1
-title: low double well
-system:
-  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}
-seed: SEED
-temperature: 300 K
-timestep: 5 fs
-friction: 10/ps
-coordinates:
-  x: {position: 0, axis: x}
-run:
-  cycle: 0.5 ps
-  equilibration: 10 ps
-  production: 4 ns
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-"""
+# 4 ns of plain MD in the low well (10/ps friction, 5 fs): many crossings, no frames
+LOW_WELL = double_well_protocol(title="low double well", seed=17, timestep="5 fs", friction="10/ps", run={
+    "cycle": "0.5 ps", "equilibration": "10 ps", "production": "4 ns", "frame_every": None})
 
 
 @pytest.fixture
@@ -76,18 +61,18 @@ def test_provenance_and_protocol_copy(small_run):
     assert provenance["platform"] in ("Reference", "CPU")
 
 
-def test_folder_of_another_protocol_is_refused_and_left_alone(small_run, write_protocol, double_well_text):
+def test_folder_of_another_protocol_is_refused_and_left_alone(small_run, write_protocol):
     protocol, folder = small_run
     before = {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()}
-    other = load_protocol(write_protocol(double_well_text.replace("seed: 5", "seed: 6"), "other.yaml"))
+    other = load_protocol(write_protocol(double_well_protocol(seed=6), "other.yaml"))
     with pytest.raises(RunFolderError, match="belongs to another protocol"):
         run_protocol(other, folder, progress=False)
     assert {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()} == before
 
 
-def test_same_seed_same_ledger(tmp_path, write_protocol, double_well_text):
-    # Reference platform with fixed seeds is deterministic (DESIGN.md, measured)
-    protocol = load_protocol(write_protocol(double_well_text.replace("production: 5 ps", "production: 2 ps")))
+def test_same_seed_same_ledger(tmp_path, write_protocol):
+    # Reference platform with fixed seeds is deterministic (measured here: tests/REFERENCES.md)
+    protocol = load_protocol(write_protocol(double_well_protocol(run={"production": "2 ps"})))
     a = read_ledger(run_protocol(protocol, tmp_path / "a", progress=False))
     b = read_ledger(run_protocol(protocol, tmp_path / "b", progress=False))
     assert np.array_equal(a.u_krt, b.u_krt) and np.array_equal(a.values_rtc, b.values_rtc)
@@ -97,7 +82,7 @@ def test_unbiased_low_barrier_populations_match_quadrature(tmp_path, write_proto
     # exact: basin populations of exp(-U/kT) by quadrature (scipy, via boost.models).
     # Plain MD crosses a ~2 kT barrier often, so a short run must agree within a few
     # reported standard errors (and within 0.05 absolute).
-    protocol = load_protocol(write_protocol(LOW_WELL.replace("SEED", "17")))
+    protocol = load_protocol(write_protocol(LOW_WELL))
     analysis = analyse_run(run_protocol(protocol, tmp_path / "run", progress=False))
     model = read_model(Node(protocol.system.value["model"], "test", "model"))
     exact = model.compute_exact_populations(300.0, {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}})
@@ -107,12 +92,12 @@ def test_unbiased_low_barrier_populations_match_quadrature(tmp_path, write_proto
         assert error < 4 * basins.d_populations[i] and error < 0.05, (name, basins.populations[i], exact[name])
 
 
-def test_analysis_recomputes_the_reduced_potentials_the_run_stored(tmp_path, write_protocol, double_well_text):
+def test_analysis_recomputes_the_reduced_potentials_the_run_stored(tmp_path, write_protocol):
     # two implementations cross-checked: the run's stored u_k and the analysis' recomputation
     from boost.analysis import compute_sample_reduced_potentials
 
-    text = double_well_text + "umbrella:\n  x: {centres: [-0.1 nm, 0 nm, 0.1 nm], spring: 2000 kJ/mol/nm**2}\n" \
-        "temperatures: [300 K, 350 K]\n"
+    text = double_well_protocol(umbrella={"x": "{centres: [-0.1 nm, 0 nm, 0.1 nm], spring: 2000 kJ/mol/nm**2}"},
+                                temperatures="[300 K, 350 K]")
     protocol = load_protocol(write_protocol(text))
     folder = run_protocol(protocol, tmp_path / "run", progress=False)
     data = read_ledger(folder)

@@ -280,7 +280,7 @@ def test_double_well_ladder_populations_match_quadrature(double_well_ladder, tem
 # -- 4. MBAR across temperatures ----------------------------------------------------------
 
 def test_mbar_free_energies_across_temperatures(four_temperatures, two_temperatures):
-    # exact: for d harmonic dof, f_j - f_i = (d/2) ln(β_j/β_i) (REFERENCES.md, harmonic well)
+    # exact: for d harmonic dof, f_j - f_i = (d/2) ln(β_j/β_i) (tests/REFERENCES.md, harmonic well)
     for path, d in ((four_temperatures, 15), (two_temperatures, 66)):
         protocol = load_protocol(path / "protocol.yaml")
         assert model_of(protocol).degrees_of_freedom == d
@@ -384,7 +384,7 @@ def test_example_protocol_checks_and_explains_itself(path):
 @pytest.mark.slow
 def test_alanine_tempering_agrees_with_umbrella_windows(tmp_path):
     # Internal agreement between two independent routes on the same force field
-    # (REFERENCES.md, capped alanine): ΔG(C7eq -> C7ax) at 300 K from temperature replica
+    # (tests/REFERENCES.md, capped alanine): ΔG(C7eq -> C7ax) at 300 K from temperature replica
     # exchange and from umbrella windows along phi, within 3 combined standard errors.
     # Sign: C7eq is the global minimum in vacuum (published: Rosso, Abrams & Tuckerman,
     # J. Phys. Chem. B 109, 4162 (2005); Tobias & Brooks, J. Phys. Chem. 96, 3864 (1992)).

@@ -28,6 +28,7 @@ from boost.scheduler import run_protocol
 from boost.spec import Node
 from boost.store import read_ledger
 from boost.units import MOLAR_GAS_CONSTANT
+from conftest import double_well_protocol
 
 TEMPERATURE = 300.0  # K
 HALF_LINES = {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}}
@@ -80,36 +81,8 @@ def _offset_deviation(estimate, exact, region):
 # friction 10/ps: the potential energy relaxes within a 0.2 ps cycle while the barrier
 # window still diffuses fast. 5 fs: the configurational error of the Langevin middle
 # integrator measured below 1 % in the variance of x in a well (ω Δt ≈ 0.3).
-HIGH_WELL = """\
-protocol: 1
-title: umbrella windows across a 40 kJ/mol double-well barrier
-system:
-  model: {name: double_well, barrier: 40 kJ/mol, minimum: 0.1 nm, tilt: 2 kJ/mol}
-seed: 1
-temperature: 300 K
-timestep: 5 fs
-friction: 10/ps
-platform: Reference
-coordinates:
-  x: {position: 0, axis: x}
-UMBRELLA
-run:
-  cycle: CYCLE
-  equilibration: EQUILIBRATION
-  production: PRODUCTION
-  checkpoint_every: 1 ns
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-analysis:
-  bins: {x: {from: -0.16 nm, to: 0.16 nm, count: 32}}
-"""
-WINDOWS = """\
-umbrella:
-  x:
-    centres: {from: -0.14 nm, to: 0.14 nm, count: 21}
-    spring: 20000 kJ/mol/nm**2
-"""
+HIGH_WELL_SYSTEM = {"model": "{name: double_well, barrier: 40 kJ/mol, minimum: 0.1 nm, tilt: 2 kJ/mol}"}
+WINDOWS = {"x": "{centres: {from: -0.14 nm, to: 0.14 nm, count: 21}, spring: 20000 kJ/mol/nm**2}"}
 N_WINDOWS = 21
 # Bounds per production length (kT; populations as fractions), each ~3 reported σ at that
 # length: σ(ΔG) ≈ 0.055 kT and per-bin σ(PMF) ≈ 0.06 kT at 2 ns per window, √5 times more
@@ -124,8 +97,13 @@ HIGH_WELL_LENGTHS = [
 
 
 def _high_well(umbrella, cycle, equilibration, production):
-    return (HIGH_WELL.replace("UMBRELLA\n", umbrella).replace("CYCLE", cycle)
-            .replace("EQUILIBRATION", equilibration).replace("PRODUCTION", production))
+    """The high double well's protocol: ``umbrella`` windows (None: plain MD) and run lengths."""
+    return double_well_protocol(
+        title="umbrella windows across a 40 kJ/mol double-well barrier", system=HIGH_WELL_SYSTEM, seed=1,
+        timestep="5 fs", friction="10/ps", platform="Reference", umbrella=umbrella,
+        run={"cycle": cycle, "equilibration": equilibration, "production": production, "frame_every": None,
+             "checkpoint_every": "1 ns"},
+        analysis={"bins": "{x: {from: -0.16 nm, to: 0.16 nm, count: 32}}"})
 
 
 @pytest.fixture(scope="module", params=HIGH_WELL_LENGTHS)
@@ -175,7 +153,7 @@ def test_plain_md_of_the_same_length_stays_in_the_left_well(tmp_path, high_well_
     # and 30 kJ/mol (12 and 50 ns), scaled by exp(-ΔE/kT) (Arrhenius; common practice):
     # one crossing per ~5 µs at 40 kJ/mol, so about 1 seed in 100 crosses within 42 ns.
     protocol, analysis, bounds = high_well_windows
-    text = _high_well("", "10 ps", "0 ps", f"{N_WINDOWS * bounds['window_ns']:g} ns")
+    text = _high_well(None, "10 ps", "0 ps", f"{N_WINDOWS * bounds['window_ns']:g} ns")
     _, folder = _run(tmp_path, text, "plain.yaml")
     x = read_ledger(folder).values_rtc[0, :, 0]
     exact = _model(protocol).compute_exact_populations(TEMPERATURE, HALF_LINES)
@@ -302,31 +280,12 @@ def test_muller_brown_example_protocol_matches_quadrature(tmp_path, repo):
 # a quarter of the wells' curvature 8 × barrier / minimum² = 4000): the bias lifts the wells
 # by ~2 kT, flattening the biased profile, so the reweighting factors exp(+βw) span ~e²
 # over the sampled range — well conditioned, exact in the limit of many samples.
-ONE_WINDOW = """\
-protocol: 1
-title: one biased run of the low double well
-system:
-  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}
-seed: 4
-temperature: 300 K
-timestep: 5 fs
-friction: 10/ps
-platform: Reference
-coordinates:
-  x: {position: 0, axis: x}
-umbrella:
-  x: {centres: [0 nm], spring: 1000 kJ/mol/nm**2}
-run:
-  cycle: 1 ps
-  equilibration: 10 ps
-  production: 10 ns
-  checkpoint_every: 1 ns
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-analysis:
-  bins: {x: {from: -0.165 nm, to: 0.165 nm, count: 33}}
-"""
+ONE_WINDOW = double_well_protocol(
+    title="one biased run of the low double well", seed=4, timestep="5 fs", friction="10/ps", platform="Reference",
+    umbrella={"x": "{centres: [0 nm], spring: 1000 kJ/mol/nm**2}"},
+    run={"cycle": "1 ps", "equilibration": "10 ps", "production": "10 ns", "frame_every": None,
+         "checkpoint_every": "1 ns"},
+    analysis={"bins": "{x: {from: -0.165 nm, to: 0.165 nm, count: 33}}"})
 
 
 @pytest.fixture(scope="module")
@@ -368,31 +327,13 @@ def test_one_biased_run_reweights_the_barrier_and_raw_counts_do_not(one_window):
 
 
 # -- 4. what the analysis refuses ------------------------------------------------------------
-SMALL = """\
-protocol: 1
-title: a small run for bad-analysis checks
-system:
-  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}
-seed: 8
-temperature: 300 K
-timestep: 5 fs
-friction: 10/ps
-platform: Reference
-coordinates:
-  x: {position: 0, axis: x}
-umbrella:
-  x: {centres: [-0.03 nm, 0.03 nm], spring: 1000 kJ/mol/nm**2}
-run:
-  cycle: 0.5 ps
-  production: PRODUCTION
-analysis:
-  bins: {x: {from: -0.15 nm, to: 0.15 nm, count: 10}}
-BASINS"""
-DISJOINT = """\
-basins:
-  left: {x: [-1 nm, 0 nm]}
-  right: {x: [0 nm, 1 nm]}
-"""
+def _small(production, **changes):
+    """A small run for bad-analysis checks: two windows by the barrier, ``production`` long."""
+    return double_well_protocol(
+        title="a small run for bad-analysis checks", seed=8, timestep="5 fs", friction="10/ps", platform="Reference",
+        umbrella={"x": "{centres: [-0.03 nm, 0.03 nm], spring: 1000 kJ/mol/nm**2}"},
+        run={"cycle": "0.5 ps", "equilibration": None, "production": production, "frame_every": None},
+        analysis={"bins": "{x: {from: -0.15 nm, to: 0.15 nm, count: 10}}"}, **changes)
 
 
 def test_a_folder_that_is_not_a_run_folder_is_refused(tmp_path):
@@ -411,23 +352,19 @@ def test_a_folder_that_is_not_a_run_folder_is_refused(tmp_path):
 
 
 def test_too_few_samples_names_the_condition(tmp_path):
-    _, folder = _run(tmp_path, SMALL.replace("PRODUCTION", "2 ps").replace("BASINS", DISJOINT))
+    _, folder = _run(tmp_path, _small("2 ps"))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         with pytest.raises(AnalysisError, match=r"condition 0 has only \d uncorrelated samples"):
             analyse_run(folder)
 
 
-OVERLAPPING = """\
-basins:
-  left: {x: [-1 nm, 0.02 nm]}
-  right: {x: [-0.02 nm, 1 nm]}
-"""
+OVERLAPPING = {"left": "{x: [-1 nm, 0.02 nm]}", "right": "{x: [-0.02 nm, 1 nm]}"}
 
 
 @pytest.fixture(scope="module")
 def small_ladder(tmp_path_factory):
-    text = SMALL.replace("PRODUCTION", "50 ps").replace("BASINS", DISJOINT) + "temperatures: [300 K, 330 K]\n"
+    text = _small("50 ps", temperatures="[300 K, 330 K]")
     return _run(tmp_path_factory.mktemp("small-ladder"), text)
 
 
@@ -436,12 +373,12 @@ def test_overlapping_basins_name_both(tmp_path, small_ladder):
     # folder whose protocol copy was edited to overlapping basins refuses it the same way.
     both = r"basins\.right must be disjoint from basin 'left'"
     path = tmp_path / "overlapping.yaml"
-    path.write_text(SMALL.replace("PRODUCTION", "50 ps").replace("BASINS", OVERLAPPING))
+    path.write_text(_small("50 ps", basins=OVERLAPPING))
     with pytest.raises(ProtocolError, match=both):
         load_protocol(path)
     folder = shutil.copytree(small_ladder[1], tmp_path / "edited-run")
     copy = folder / "protocol.yaml"
-    copy.write_text(copy.read_text().replace(DISJOINT, OVERLAPPING))
+    copy.write_text(_small("50 ps", temperatures="[300 K, 330 K]", basins=OVERLAPPING))
     with pytest.raises(ProtocolError, match=both):
         analyse_run(folder)
 

@@ -43,7 +43,8 @@ def assert_same(a, b):
 
 @pytest.mark.parametrize("platform", ["Reference", "{name: CPU, threads: 1}"])
 def test_same_seed_same_result_whatever_the_worker_count(tmp_path, platform):
-    # deterministic platforms (Reference; CPU with DeterministicForces) — DESIGN.md, measured
+    # deterministic platforms (Reference; CPU with DeterministicForces) — measured here:
+    # tests/REFERENCES.md, deterministic platforms
     (tmp_path / "p.yaml").write_text(LADDER.replace("PLATFORM", platform))
     protocol = load_protocol(tmp_path / "p.yaml")
     one = run_protocol(protocol, tmp_path / "one", progress=False, workers=1)

@@ -199,7 +199,7 @@ def window_values(text, n_cycles, rng):
     return x_rt, potential_rt
 
 
-STAGES = [("boost.analysis.samples", "read_ledger", "read ledger"),
+STAGES = [("boost.analysis.inputs", "read_ledger", "read and verify ledger"),
           ("boost.analysis", "select_samples", "decorrelate, subsample, u_kn"),
           ("boost.analysis", "Reweighting", "MBAR solve"),
           ("boost.analysis", "compute_profiles", "PMFs"),

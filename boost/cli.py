@@ -113,7 +113,7 @@ def run(protocol_file, folder, platform_name, threads, workers, quiet):
 @main.command()
 def systems():
     """List the bundled systems a protocol can name."""
-    from .systems import list_bundled_systems
+    from .system_spec import list_bundled_systems
 
     for name, title, _ in list_bundled_systems():
         click.echo(f"{name:24s} {title}")

@@ -56,7 +56,7 @@ def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, c
     ``comm`` and ``cores`` (this rank's, see boost.workers.cores_of_rank) tell the
     platform choice how the walkers will be laid out.
     """
-    built = load_system(protocol.system, protocol.base_dir)
+    built = load_system(protocol.system)
     coordinates = resolve_coordinates(protocol, built.topology)
     conditions = build_conditions(protocol)
     system, umbrella_names = prepare_system(built, protocol, coordinates)

@@ -2,10 +2,9 @@
 
 A protocol fully determines a run: the system, the coordinates, the conditions (the
 temperature ladder times the umbrella windows), how long to run, what to analyse and the
-seed. Every input check happens here, the system spec's included
-(:func:`boost.system_spec.read_system_spec`), so later stages trust what they are given;
-the only checks left for later are those that need the built system (atom selections, see
-:func:`resolve_coordinates`) or the contents of the files it is built from.
+seed. Every input check happens here (the system spec's in :mod:`boost.system_spec`), so
+later stages trust what they are given; the only checks left for later need the built system
+(atom selections, see :func:`resolve_coordinates`) or the contents of its files.
 
 Internal units: nm, ps, K, kJ/mol, rad, bar.
 """

@@ -259,7 +259,7 @@ def _find_spec_file(node, base_dir):
     text = node.value.strip()
     if Path(text).name != text:
         return MissingSystemFile(node.value, f"{node.place} names {printable(path)}, which {problem}.")
-    stem = text[:-5] if text.endswith(".yaml") else text
+    stem = text.removesuffix(".yaml")
     bundled = bundled_systems_folder() / f"{stem}.yaml"
     if file_problem(bundled) is None:
         return bundled

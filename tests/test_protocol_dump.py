@@ -7,8 +7,6 @@ fuzzed protocols come from tests/test_protocol_fuzz.py's mutations of the exampl
 """
 
 import dataclasses
-import math
-import textwrap
 
 import pytest
 from conftest import DOUBLE_WELL, REPO

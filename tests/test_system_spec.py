@@ -64,7 +64,7 @@ BAD_SPECS = [
     ("{charmm: {psf: a.psf, coordinates: a.crd, parameters: [a.prm], box: [3 nm, 3 nm]}}",
      r"system\.charmm\.box must be one length \(a cube\) or a list of three lengths"),
     ("{charmm: {psf: a.psf, coordinates: a.crd, parameters: []}}", r"system\.charmm\.parameters must be a list"),
-    (f"{{peptide: {{sequence: [ACE, ALA, NME], phi: -80}}}}", r"system\.peptide\.phi must be an angle"),
+    ("{peptide: {sequence: [ACE, ALA, NME], phi: -80}}", r"system\.peptide\.phi must be an angle"),
     ("{peptide: {sequence: [ACE, ALA, NME], phi: [-80 deg, 60 deg]}}",
      r"system\.peptide\.phi must be one angle or a list of 1 angle,"),
     ("{peptide: {sequence: [ACE, XYZ, NME]}}", r"system\.peptide cannot be built: .*XYZ"),
@@ -120,8 +120,8 @@ def test_errors_inside_a_spec_file_name_that_file(checked, tmp_path):
 
 
 def test_an_inline_spec_is_read_into_typed_values(tmp_path):
-    text = with_system(f"{{peptide: {{sequence: ACE ALA NME, phi: -80 deg}}, title: ala, "
-                       f"water_box: {{padding: 0.6 nm, ionic_strength: 0.15 molar}}, nonbonded: {{cutoff: 0.6 nm}}}}")
+    text = with_system("{peptide: {sequence: ACE ALA NME, phi: -80 deg}, title: ala, "
+                       "water_box: {padding: 0.6 nm, ionic_strength: 0.15 molar}, nonbonded: {cutoff: 0.6 nm}}")
     spec = parse_protocol(text, tmp_path / "protocol.yaml").system
     assert isinstance(spec, SystemSpec) and spec.reference is None and spec.title == "ala"
     assert isinstance(spec.source, PeptideSource) and spec.source.sequence == ("ACE", "ALA", "NME")

@@ -20,6 +20,7 @@ from .exceptions import (AnalysisError, BoostError, BoostWarning, ConvergenceWar
 _LAZY = {
     "Analysis": "analysis", "analyse_run": "analysis",
     "Protocol": "protocol", "load_protocol": "protocol", "parse_protocol": "protocol",
+    "dump_protocol": "protocol_dump",
     "make_plan": "plan", "run_protocol": "scheduler",
     "read_ledger": "store",
 }

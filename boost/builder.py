@@ -13,10 +13,11 @@ the tables and radians at the public edge.
 import math
 
 import numpy as np
-import openmm
-from openmm import app, unit
 
 from .exceptions import ProtocolError, SimulationError
+
+# OpenMM is imported where atoms are made: a sequence is checked (when a protocol is
+# loaded) without it.
 
 # Backbone, Engh & Huber 1991, general / Gly / Pro values, in Å and degrees. Recalled,
 # then checked against a third-party copy of the table (not the paper itself).
@@ -124,8 +125,8 @@ def _side_chain(name, xyz):
     return bonds + _RING_BONDS.get(name, [])
 
 
-def _check_sequence(sequence):
-    """Return the residue names as a list, or raise ProtocolError."""
+def check_sequence(sequence):
+    """Return the residue names (upper case) as a list, or raise ProtocolError."""
     if isinstance(sequence, str) or not hasattr(sequence, "__len__"):
         raise ProtocolError(f"build_peptide: sequence must be a list of residue names such as "
                             f"['ACE', 'ALA', 'NME']; got {sequence!r}.")
@@ -192,6 +193,8 @@ def _backbone(names, phi, psi):
 
 def _heavy_topology(names, residues, bonds):
     """OpenMM topology and positions (nm) of the heavy atoms, bonds included."""
+    from openmm import app
+
     topology = app.Topology()
     chain = topology.addChain()
     positions, atoms = [], []
@@ -244,7 +247,10 @@ def build_peptide(sequence, *, phi, psi, forcefield_files=("amber14-all.xml",)):
     ----------
     Engh & Huber, Acta Cryst. A47, 392 (1991), doi:10.1107/S0108767391001071.
     """
-    names = _check_sequence(sequence)
+    import openmm
+    from openmm import app, unit
+
+    names = check_sequence(sequence)
     phi_deg = _check_angles(phi, len(names) - 2, "phi")
     psi_deg = _check_angles(psi, len(names) - 2, "psi")
     residues, bonds = _backbone(names, phi_deg, psi_deg)

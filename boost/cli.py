@@ -115,7 +115,7 @@ def run(protocol_file, folder, platform_name, threads, workers, quiet):
 def systems():
     """List the bundled systems a protocol can name, and where the example protocols are."""
     from .bundled import bundled_folder
-    from .systems import list_bundled_systems
+    from .system_spec import list_bundled_systems
 
     for name, title, _ in list_bundled_systems():
         click.echo(f"{name:24s} {title}")

@@ -22,11 +22,11 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-import openmm
-from openmm import app
-from scipy import integrate, optimize
 
 from .units import MOLAR_GAS_CONSTANT
+
+# OpenMM and SciPy are imported where a model is built or integrated: reading a model
+# spec (when a protocol is loaded) needs neither.
 
 MODEL_NAMES = ("double_well", "muller_brown", "harmonic_well")
 
@@ -59,7 +59,10 @@ _MB_BOX = ((-1.5, 1.2), (-0.5, 2.0))
 
 
 def read_model(node):
-    """Read a model spec into a :class:`DoubleWell` or :class:`MullerBrown`.
+    """Read a model spec into a :class:`DoubleWell`, :class:`MullerBrown` or :class:`HarmonicWell`.
+
+    The result is the typed model spec: frozen, every parameter checked and in MD units;
+    its ``build_system()`` makes the OpenMM system.
 
     Parameters
     ----------
@@ -83,17 +86,12 @@ def read_model(node):
     return classes[name](**values)
 
 
-def build_model(node):
-    """Build the OpenMM system of a model spec (see :func:`read_model`).
+def model_parameters(model):
+    """``(key, dimension, value)`` of each parameter of a model spec, in the order of its keys.
 
-    Returns
-    -------
-    system : openmm.System
-    topology : openmm.app.Topology
-    positions : ndarray, shape (1, 3), in nm
-        The particle at the model's starting minimum.
+    ``dimension`` is a key of :data:`boost.units.DIMENSIONS`, or None for a whole number.
     """
-    return read_model(node).build_system()
+    return [(key, dimension, getattr(model, key)) for key, (dimension, _) in _KEYS[model.name].items()]
 
 
 def _one_particle(expression, parameters, mass, position):
@@ -103,6 +101,9 @@ def _one_particle(expression, parameters, mass, position):
 
 def _particles(expression, parameters, mass, positions):
     """Independent particles of ``mass`` (amu), one residue each, in one CustomExternalForce."""
+    import openmm
+    from openmm import app
+
     force = openmm.CustomExternalForce(expression)
     for key in parameters:
         force.addPerParticleParameter(key)
@@ -142,6 +143,8 @@ def _check_basins(basins, axes):
 
 def _quad(function, lo, hi, points):
     """Integral of a smooth scalar function over [lo, hi], split at interior ``points``."""
+    from scipy import integrate
+
     inner = [p for p in points if lo < p < hi]
     value, _ = integrate.quad(function, lo, hi, points=inner or None, limit=400,
                               epsabs=0.0, epsrel=1e-10)
@@ -364,6 +367,8 @@ class MullerBrown(_ExactPopulations):
 
     def find_stationary_point(self, guess):
         """The :class:`StationaryPoint` reached from ``guess`` (x, y in nm) by root finding."""
+        from scipy import optimize
+
         start = np.asarray(guess, dtype=float) / self.length_scale
         solution = optimize.root(lambda p: _mb_derivatives(p)[0], start,
                                  jac=lambda p: _mb_derivatives(p)[1], tol=1e-13)

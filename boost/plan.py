@@ -10,7 +10,7 @@ from .engine import PlatformChoice, choose_platform, prepare_system
 from .protocol import resolve_coordinates
 from .provenance import describe_environment, describe_git
 from .store import dcd_frame_bytes
-from .systems import load_system
+from .systems import build_system
 from .workers import rank_walkers
 
 
@@ -39,7 +39,7 @@ def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, c
     ``comm`` and ``cores`` (this rank's, see boost.workers.cores_of_rank) tell the
     platform choice how the walkers will be laid out.
     """
-    built = load_system(protocol.system, protocol.base_dir)
+    built = build_system(protocol.system)
     coordinates = resolve_coordinates(protocol, built.topology)
     conditions = build_conditions(protocol)
     system, umbrella_names = prepare_system(built, protocol, coordinates)

@@ -2,9 +2,9 @@
 
 A protocol fully determines a run: the system, the coordinates, the conditions (the
 temperature ladder times the umbrella windows), how long to run, what to analyse and the
-seed. Every input check happens here, so later stages trust what they are given; the only
-checks left for later are those that need the built system (atom selections, see
-:func:`resolve_coordinates`).
+seed. Every input check happens here (the system spec's in :mod:`boost.system_spec`), so
+later stages trust what they are given; the only checks left for later need the built system
+(atom selections, see :func:`resolve_coordinates`) or the contents of its files.
 
 Internal units: nm, ps, K, kJ/mol, rad, bar.
 """
@@ -20,7 +20,8 @@ import numpy as np
 from .exceptions import ProtocolError
 from .limits import (MAX_COUNT, MAX_SPEC_BYTES, MAX_SWAP_ATTEMPTS, MAX_TITLE_LENGTH, check_conditions,
                      check_swap_proposals)
-from .spec import Node, load_yaml, parse_yaml, read_text
+from .spec import Node, parse_yaml, read_text
+from .system_spec import read_system_spec
 
 SCHEMA_VERSION = 1
 _NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")   # used with match(); \Z refuses "x\n"
@@ -165,7 +166,7 @@ class Protocol:
     timestep: float
     friction: float
     pressure: float | None
-    system: Node
+    system: object         # boost.system_spec.SystemSpec (or MissingSystemFile)
     coordinates: dict
     flat_bottom: tuple     # tuple[FlatBottom, ...]
     umbrella: tuple
@@ -229,7 +230,7 @@ def parse_protocol(text, path):
         title=_read_title(root), seed=root.get("seed").integer(minimum=0),
         temperature=temperature, timestep=timestep,
         friction=root.get("friction", "1/ps").quantity("rate", positive=True),
-        pressure=pressure, system=root.get("system"), coordinates=coordinates,
+        pressure=pressure, system=read_system_spec(root.get("system"), path.parent), coordinates=coordinates,
         flat_bottom=_read_flat_bottom(root.get("flat_bottom", []), coordinates),
         umbrella=umbrella, temperatures=temperatures, exchange=exchange,
         platform=_read_platform(root.get("platform", {})),

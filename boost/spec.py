@@ -82,7 +82,10 @@ def parse_yaml(text, file):
     return Node(data, file, "")
 
 
-_MISSING_FILE = "does not exist"
+#: What :func:`file_problem` says of a path where nothing is.
+MISSING_FILE = "does not exist"
+#: What :func:`file_problem` says of a folder.
+FOLDER = "is a folder, not a file"
 
 
 def file_problem(path):
@@ -94,7 +97,7 @@ def file_problem(path):
     try:
         mode = os.stat(path).st_mode
     except (FileNotFoundError, NotADirectoryError):
-        return _MISSING_FILE
+        return MISSING_FILE
     except ValueError:                                   # a NUL character in the path
         return "is not a valid path (it holds a NUL character)"
     except OSError as err:
@@ -102,7 +105,7 @@ def file_problem(path):
     if stat.S_ISREG(mode):
         return None
     if stat.S_ISDIR(mode):
-        return "is a folder, not a file"
+        return FOLDER
     kind = ("a FIFO" if stat.S_ISFIFO(mode) else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode)
             else "a socket" if stat.S_ISSOCK(mode) else "a special file")
     return f"is not a regular file ({kind})"
@@ -116,7 +119,7 @@ def read_text(path, what, max_bytes=None):
     """
     path, shown = Path(path), printable(path)
     problem = file_problem(path)
-    if problem == _MISSING_FILE:
+    if problem == MISSING_FILE:
         raise InputError(f"{shown}: {what} file not found.")
     if problem is not None:
         raise InputError(f"{shown}: {problem}; a {what} file is expected.")
@@ -138,6 +141,26 @@ def read_text(path, what, max_bytes=None):
         raise
     except OSError as err:
         raise InputError(f"{shown}: {what} file cannot be read ({err.strerror}).") from None
+
+
+class _Dumper(yaml.SafeDumper):
+    """Mappings in block style, in their order; lists of plain values in flow style ([a, b])."""
+
+    def represent_dict(self, data):
+        return self.represent_mapping("tag:yaml.org,2002:map", data, flow_style=False)
+
+    def represent_list(self, data):
+        plain = not any(isinstance(item, (dict, list)) for item in data)
+        return self.represent_sequence("tag:yaml.org,2002:seq", data, flow_style=plain)
+
+
+_Dumper.add_representer(dict, _Dumper.represent_dict)
+_Dumper.add_representer(list, _Dumper.represent_list)
+
+
+def dump_yaml(value):
+    """YAML text of plain data (mappings, lists, text, numbers) that :func:`parse_yaml` reads back."""
+    return yaml.dump(value, Dumper=_Dumper, sort_keys=False, allow_unicode=True, width=100)
 
 
 def load_yaml(path, what="protocol"):
@@ -283,7 +306,10 @@ class Node:
     def path_value(self, base_dir):
         """A file path, relative to ``base_dir`` (the folder of the file it is written in)."""
         text = self.text()
-        path = Path(text).expanduser()
+        try:
+            path = Path(text).expanduser()
+        except RuntimeError:                             # '~name' of no known user
+            self.fail("a path whose leading '~' names a known user")
         return path if path.is_absolute() else (Path(base_dir) / path)
 
 

@@ -134,6 +134,53 @@ def parse_quantity(value, dimension, *, place):
     return number
 
 
+#: The unit :func:`format_quantity` writes each dimension in (OpenMM's MD unit, but angles in deg).
+_WRITTEN_UNITS = {"length": "nm", "time": "ps", "rate": "/ps", "temperature": "K", "energy": "kJ/mol",
+                  "angle": "deg", "mass": "amu", "pressure": "bar", "concentration": "molar",
+                  "spring_length": "kJ/mol/nm**2", "spring_angle": "kJ/mol/rad**2", "memory": "byte"}
+_BINARY_PREFIXES = (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10))
+
+
+def format_number(number):
+    """The shortest text of a float that reads back to it; whole numbers without '.0'."""
+    number = float(number)
+    return str(int(number)) if number.is_integer() and abs(number) < 2**53 else repr(number)
+
+
+def format_quantity(value, dimension):
+    """Text with a unit that :func:`parse_quantity` reads back to exactly ``value``.
+
+    Parameters
+    ----------
+    value : float
+        In the MD unit of ``dimension`` (see :func:`parse_quantity`).
+    dimension : str
+        A key of :data:`DIMENSIONS`.
+
+    Returns
+    -------
+    str
+        E.g. ``"300 K"``, ``"0.002 ps"``, ``"-80 deg"`` (the shortest decimal number of
+        degrees that converts back to the same radians; ``"... rad"`` when none does),
+        ``"1 GiB"`` (memory in the largest binary unit it is a whole multiple of).
+    """
+    value = float(value)
+    for number, unit in _written_forms(value, dimension):
+        text = f"{format_number(number)}{'' if unit.startswith('/') else ' '}{unit}"
+        if parse_quantity(text, dimension, place="") == value:
+            return text
+    return f"{format_number(value)} {DIMENSIONS[dimension][0]}"    # the MD unit itself: exact
+
+
+def _written_forms(value, dimension):
+    if dimension == "angle":
+        degrees = math.degrees(value)
+        return [(float(f"{degrees:.{digits}g}"), "deg") for digits in range(1, 18)]
+    if dimension == "memory":
+        return [(value / size, unit) for unit, size in _BINARY_PREFIXES if value % size == 0] + [(value, "byte")]
+    return [(value, _WRITTEN_UNITS[dimension])]
+
+
 def beta(temperature):
     """Inverse thermal energy 1/kT in mol/kJ for a temperature in K."""
     return 1.0 / (MOLAR_GAS_CONSTANT * temperature)

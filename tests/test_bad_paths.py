@@ -19,6 +19,7 @@ from boost import systems
 from boost.exceptions import InputError, ProtocolError
 from boost.protocol import load_protocol
 from boost.spec import Node
+from boost.system_spec import read_system_spec
 
 TIMEOUT = 120   # s; a run that reads a FIFO would wait forever
 
@@ -111,7 +112,7 @@ def test_system_files_that_are_fifos_or_devices(system, make, message, tmp_path)
 def test_a_system_spec_file_that_is_a_fifo_in_process(tmp_path, fifo):
     # stat only: this returns at once with the fix (and would block without it, so it runs last)
     with pytest.raises(InputError, match=r"system names \S*pipe\.yaml, which is not a regular file \(a FIFO\)\.$"):
-        systems.load_system(Node("pipe.yaml", "protocol.yaml", "system"), tmp_path)
+        read_system_spec(Node("pipe.yaml", "protocol.yaml", "system"), tmp_path)
 
 
 # -- no raw bytes from a file in a message ----------------------------------------------------
@@ -124,7 +125,7 @@ def test_reader_errors_quote_no_raw_bytes_of_the_file(tmp_path, name, spec):
     # a CHARMM reader quotes the first line of a file it cannot read; here that line clears the screen
     (tmp_path / name).write_bytes(b"\x1b[2J\x1b]0;owned\x07\r" + b"#" * 500 + b"\x00\n" * 3)
     with pytest.raises(InputError) as info:
-        systems.build_system(Node(spec, "protocol.yaml", "system"), tmp_path)
+        systems.build_system(read_system_spec(Node(spec, "protocol.yaml", "system"), tmp_path))
     message = str(info.value)
     assert message.isprintable() and "#" * 41 not in message, message       # a snippet at most: cut short
     assert message.startswith(f"protocol.yaml: system.") and f"names {tmp_path / name}, which cannot be read" in message
@@ -137,4 +138,4 @@ def test_a_title_of_a_system_spec_is_one_printable_line(tmp_path):
         """)
     (tmp_path / "dw.yaml").write_text(spec)
     with pytest.raises(ProtocolError, match=r"dw\.yaml: title must be printable text on one line .*U\+001B"):
-        systems.load_system(Node("dw.yaml", "protocol.yaml", "system"), tmp_path)
+        read_system_spec(Node("dw.yaml", "protocol.yaml", "system"), tmp_path)

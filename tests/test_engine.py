@@ -11,7 +11,7 @@ from boost.conditions import Condition, compute_reduced_potentials
 from boost.coordinates import compute_coordinate_values_many
 from boost.engine import BIAS_GROUP, PlatformChoice, Walker, derive_seeds, prepare_system
 from boost.protocol import load_protocol, resolve_coordinates
-from boost.systems import load_system
+from boost.systems import build_system
 from boost.units import beta
 
 ALANINE = """\
@@ -37,7 +37,7 @@ run: {production: 1 ps}
 @pytest.fixture
 def alanine(write_protocol):
     protocol = load_protocol(write_protocol(ALANINE))
-    built = load_system(protocol.system, protocol.base_dir)
+    built = build_system(protocol.system)
     coordinates = resolve_coordinates(protocol, built.topology)
     system, names = prepare_system(built, protocol, coordinates)
     return protocol, built, coordinates, system, names

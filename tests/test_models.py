@@ -10,7 +10,7 @@ import pytest
 from openmm import app
 
 from boost.exceptions import ProtocolError
-from boost.models import MODEL_NAMES, DoubleWell, MullerBrown, build_model, read_model
+from boost.models import MODEL_NAMES, DoubleWell, MullerBrown, read_model
 from boost.spec import Node
 from boost.units import MOLAR_GAS_CONSTANT
 
@@ -91,7 +91,7 @@ def test_read_model_rejects_bad_specs(spec, pattern):
 
 @pytest.mark.parametrize("spec", [TILTED, SCALED_MB])
 def test_topology_is_one_selectable_atom(spec):
-    system, topology, positions = build_model(Node(spec, FILE, "system.model"))
+    system, topology, positions = read_model(Node(spec, FILE, "system.model")).build_system()
     assert system.getNumParticles() == 1 and system.getNumConstraints() == 0
     assert not system.usesPeriodicBoundaryConditions()
     assert positions.shape == (1, 3)
@@ -135,7 +135,7 @@ def test_openmm_forces_are_minus_numerical_gradient(spec, box):
 @pytest.mark.parametrize("spec", [TILTED, SCALED_MB])
 def test_start_position_is_a_minimum(spec):
     # source: exact (the force vanishes at a stationary point)
-    system, _, positions = build_model(Node(spec, FILE, "system.model"))
+    system, _, positions = read_model(Node(spec, FILE, "system.model")).build_system()
     _, forces = openmm_energy_and_forces(system, positions)
     assert np.abs(forces).max() < 1e-6
 
@@ -297,7 +297,7 @@ def test_langevin_run_samples_exact_population():
     from pymbar import timeseries
 
     spec = dict(name="double_well", barrier="5 kJ/mol", tilt="1 kJ/mol")  # barrier ~2 kT
-    system, _, positions = build_model(Node(spec, FILE, "system.model"))
+    system, _, positions = read_model(Node(spec, FILE, "system.model")).build_system()
     context = reference_context(system, seed=2718, friction=10.0, timestep=0.005)
     context.setPositions(positions)
     context.setVelocitiesToTemperature(300.0, 31)

@@ -9,10 +9,8 @@ import pytest
 
 from boost.analysis import analyse_run
 from boost.exceptions import RunFolderError
-from boost.models import read_model
 from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
-from boost.spec import Node
 from boost.store import read_ledger
 from conftest import double_well_protocol
 
@@ -84,7 +82,7 @@ def test_unbiased_low_barrier_populations_match_quadrature(tmp_path, write_proto
     # reported standard errors (and within 0.05 absolute).
     protocol = load_protocol(write_protocol(LOW_WELL))
     analysis = analyse_run(run_protocol(protocol, tmp_path / "run", progress=False))
-    model = read_model(Node(protocol.system.value["model"], "test", "model"))
+    model = protocol.system.source.model         # the typed model spec, as read from the protocol
     exact = model.compute_exact_populations(300.0, {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}})
     basins = analysis.basins
     for i, name in enumerate(basins.names):

@@ -17,9 +17,10 @@ import openmm
 import pytest
 from openmm import app, unit
 
-from boost import systems
+from boost import system_spec, systems
 from boost.exceptions import InputError, ProtocolError
 from boost.spec import Node
+from boost.system_spec import read_system_spec
 
 KCAL = 4.184  # kJ per thermochemical kcal (exact by definition; common practice)
 
@@ -50,6 +51,11 @@ def _spec(value, file="protocol.yaml", path="system"):
     return Node(value, file, path)
 
 
+def _build(value, base_dir):
+    """Read a protocol's ``system`` value (every check of the spec), then build it."""
+    return systems.build_system(read_system_spec(_spec(value), base_dir))
+
+
 def _write(path, text):
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(textwrap.dedent(text))
@@ -58,7 +64,7 @@ def _write(path, text):
 
 @pytest.fixture(scope="module")
 def alanine():
-    return systems.load_system(_spec("alanine-vacuum"), ".")
+    return _build("alanine-vacuum", ".")
 
 
 PEPTIDE = {"sequence": ["ACE", "ALA", "NME"]}
@@ -71,7 +77,7 @@ def _write_alanine_pdb(built, path):
 
 
 # -- bundled systems ------------------------------------------------------------------
-BUNDLED = systems.list_bundled_systems()
+BUNDLED = system_spec.list_bundled_systems()
 
 
 def test_the_bundled_systems_are_the_expected_ones():
@@ -83,7 +89,7 @@ def test_the_bundled_systems_are_the_expected_ones():
 
 @pytest.mark.parametrize("name", [name for name, _, _ in BUNDLED])
 def test_every_bundled_system_builds(name):
-    built = systems.load_system(_spec(name), ".")
+    built = _build(name, ".")
     n = built.system.getNumParticles()
     assert built.positions.shape == (n, 3)
     assert built.topology.getNumAtoms() == n
@@ -115,7 +121,7 @@ def test_alanine_is_built_at_the_requested_angles(alanine):
 def test_peptide_sequence_as_text_and_angles_as_lists(alanine):
     spec = {"peptide": {"sequence": "ACE ALA NME", "phi": ["-80 deg"], "psi": ["75 deg"]},
             "title": "same alanine"}
-    built = systems.build_system(_spec(spec), ".")
+    built = _build(spec, ".")
     assert built.title == "same alanine"
     np.testing.assert_array_equal(built.positions, alanine.positions)
 
@@ -125,15 +131,15 @@ def test_solvated_system_with_ions_is_reproducible():
     spec = {"peptide": PEPTIDE, "water_box": {"padding": "0.6 nm", "ionic_strength": "1 molar"},
             "nonbonded": {"cutoff": "0.6 nm"}}
     random.seed(1)
-    first = systems.build_system(_spec(spec), ".")
+    first = _build(spec, ".")
     random.seed(2)  # the caller's random state must not matter
-    second = systems.build_system(_spec(spec), ".")
+    second = _build(spec, ".")
     assert {"NA", "CL"} <= {residue.name for residue in first.topology.residues()}
     np.testing.assert_array_equal(first.positions, second.positions)
 
 
 def test_obc2_has_a_generalized_born_force():
-    built = systems.load_system(_spec("alanine-obc2"), ".")
+    built = _build("alanine-obc2", ".")
     gb = [f for f in built.system.getForces()
           if isinstance(f, (openmm.GBSAOBCForce, openmm.CustomGBForce))]
     assert len(gb) == 1
@@ -143,7 +149,7 @@ def test_obc2_has_a_generalized_born_force():
 def test_double_well_energy_at_the_barrier_top():
     # source: exact; U = barrier ((x/minimum)^2 - 1)^2 + tilt x/minimum + k(y^2+z^2)/2
     # (boost.models docstring) gives U(0, 0, 0) = barrier = 10 kJ/mol in double-well.yaml
-    built = systems.load_system(_spec("double-well"), ".")
+    built = _build("double-well", ".")
     assert built.system.getNumConstraints() == 0
     assert built.box_vectors is None
     assert _energy(built.system, [[0.0, 0.0, 0.0]]) == pytest.approx(10.0, abs=1e-9)
@@ -151,17 +157,17 @@ def test_double_well_energy_at_the_barrier_top():
 
 def test_a_file_beside_the_protocol_wins_over_a_bundled_name(tmp_path):
     _write(tmp_path / "double-well.yaml", "model: {name: muller_brown}\n")
-    local = systems.load_system(_spec("double-well.yaml"), tmp_path)
-    bundled = systems.load_system(_spec("double-well"), tmp_path)
+    local = _build("double-well.yaml", tmp_path)
+    bundled = _build("double-well", tmp_path)
     assert local.system.getForce(0).getEnergyFunction() != bundled.system.getForce(0).getEnergyFunction()
 
 
 def test_environment_variable_overrides_the_bundled_folder(tmp_path, monkeypatch):
     _write(tmp_path / "mine.yaml", "title: my well\nmodel: {name: double_well}\n")
     monkeypatch.setenv("BOOST_SYSTEMS", str(tmp_path))
-    assert systems.bundled_systems_folder() == tmp_path
-    assert systems.list_bundled_systems() == [("mine", "my well", tmp_path / "mine.yaml")]
-    assert systems.load_system(_spec("mine"), tmp_path / "elsewhere").title == "my well"
+    assert system_spec.bundled_systems_folder() == tmp_path
+    assert system_spec.list_bundled_systems() == [("mine", "my well", tmp_path / "mine.yaml")]
+    assert _build("mine", tmp_path / "elsewhere").title == "my well"
 
 
 # -- PDB / PDBx + force field ---------------------------------------------------------
@@ -172,7 +178,7 @@ def test_structure_file_matches_the_direct_openmm_route(alanine, tmp_path, suffi
     with open(path, "w") as handle:
         writer.writeFile(alanine.topology, alanine.positions * unit.nanometer, handle)
     _write(tmp_path / "sys.yaml", f"pdb: ala{suffix}\nforcefield: [amber14-all.xml]\n")
-    built = systems.load_system(_spec("sys.yaml"), tmp_path)
+    built = _build("sys.yaml", tmp_path)
     # source: OpenMM's own app layer (library), called directly on the same file
     structure = (app.PDBFile if suffix == ".pdb" else app.PDBxFile)(str(path))
     direct = app.ForceField("amber14-all.xml").createSystem(
@@ -227,7 +233,7 @@ def test_local_forcefield_file_relative_to_the_spec(tmp_path):
     _write(tmp_path / "sub" / "ff" / "tri.xml", TRI_FORCEFIELD)
     _write_tri_pdb(tmp_path / "sub" / "tri.pdb")
     _write(tmp_path / "sub" / "sys.yaml", "pdb: tri.pdb\nforcefield: [ff/tri.xml]\nconstraints: none\n")
-    built = systems.load_system(_spec("sub/sys.yaml"), tmp_path)
+    built = _build("sub/sys.yaml", tmp_path)
     # source: exact; OpenMM's XML force fields use E = k/2 (r - r0)^2 and k/2 (θ - θ0)^2
     # (OpenMM user guide, HarmonicBondForce / HarmonicAngleForce)
     expected = sum(0.5 * 259408.0 * (r - 0.1526) ** 2 for r in _bond_lengths(TRI_XYZ))
@@ -239,7 +245,7 @@ def test_local_forcefield_file_relative_to_the_spec(tmp_path):
 def test_water_box_adds_water_a_box_and_pme(alanine, tmp_path):
     _write_alanine_pdb(alanine, tmp_path / "ala.pdb")
     spec = {"pdb": "ala.pdb", "water_box": {"padding": "0.6 nm"}, "nonbonded": {"cutoff": "0.6 nm"}}
-    built = systems.build_system(_spec(spec), tmp_path)
+    built = _build(spec, tmp_path)
     waters = [r for r in built.topology.residues() if r.name == "HOH"]
     assert len(waters) > 10
     assert built.system.getNumParticles() == 22 + 3 * len(waters)
@@ -260,7 +266,7 @@ def test_serialized_round_trip_gives_the_same_energy(alanine, tmp_path):
     (tmp_path / "system.xml").write_text(openmm.XmlSerializer.serialize(alanine.system))
     _write_alanine_pdb(alanine, tmp_path / "ala.pdb")
     spec = {"serialized": {"system": "system.xml", "pdb": "ala.pdb"}, "title": "round trip"}
-    built = systems.build_system(_spec(spec), tmp_path)
+    built = _build(spec, tmp_path)
     assert built.title == "round trip"
     # source: OpenMM's XmlSerializer (library) evaluated on the original System
     positions = app.PDBFile(str(tmp_path / "ala.pdb")).getPositions(asNumpy=True)
@@ -336,7 +342,7 @@ def test_amber_files_give_the_hand_computed_energy(tmp_path):
     _write_prmtop(tmp_path / "tri.prmtop")
     _write_inpcrd(tmp_path / "tri.inpcrd", TRI_XYZ)
     spec = {"amber": {"prmtop": "tri.prmtop", "inpcrd": "tri.inpcrd"}, "constraints": "none"}
-    built = systems.build_system(_spec(spec), tmp_path)
+    built = _build(spec, tmp_path)
     assert built.box_vectors is None
     np.testing.assert_allclose(built.positions, TRI_XYZ, rtol=0, atol=1e-12)
     assert _energy(built.system, built.positions) == pytest.approx(_amber_expected(TRI_XYZ), rel=1e-9)
@@ -347,10 +353,10 @@ def test_amber_implicit_solvent_and_box(tmp_path):
     _write_inpcrd(tmp_path / "tri.inpcrd", TRI_XYZ)
     _write_inpcrd(tmp_path / "box.inpcrd", TRI_XYZ, box_nm=2.5)
     spec = {"amber": {"prmtop": "tri.prmtop", "inpcrd": "tri.inpcrd"}, "implicit_solvent": "obc2"}
-    gb = systems.build_system(_spec(spec), tmp_path)
+    gb = _build(spec, tmp_path)
     assert any(isinstance(f, (openmm.GBSAOBCForce, openmm.CustomGBForce)) for f in gb.system.getForces())
     spec = {"amber": {"prmtop": "tri.prmtop", "inpcrd": "box.inpcrd"}}
-    boxed = systems.build_system(_spec(spec), tmp_path)
+    boxed = _build(spec, tmp_path)
     np.testing.assert_allclose(boxed.box_vectors, 2.5 * np.eye(3), atol=1e-12)
     nonbonded = next(f for f in boxed.system.getForces() if isinstance(f, openmm.NonbondedForce))
     assert nonbonded.getNonbondedMethod() == openmm.NonbondedForce.PME
@@ -397,7 +403,7 @@ def test_gromacs_files_give_the_hand_computed_energy(tmp_path):
     _write_gromacs(tmp_path)
     spec = {"gromacs": {"top": "tri.top", "gro": "tri.gro", "include_dir": "ff"},
             "constraints": "none"}
-    built = systems.build_system(_spec(spec), tmp_path)
+    built = _build(spec, tmp_path)
     np.testing.assert_allclose(built.box_vectors, 3.0 * np.eye(3), atol=1e-12)
     nonbonded = next(f for f in built.system.getForces() if isinstance(f, openmm.NonbondedForce))
     assert nonbonded.getNonbondedMethod() == openmm.NonbondedForce.PME
@@ -451,7 +457,7 @@ def test_charmm_files_give_the_hand_computed_energy(tmp_path):
     _write_charmm(tmp_path)
     spec = {"charmm": {"psf": "tri.psf", "coordinates": "tri.crd", "parameters": ["tri.prm"],
                        "box": "3 nm"}, "constraints": "none"}
-    built = systems.build_system(_spec(spec), tmp_path)
+    built = _build(spec, tmp_path)
     np.testing.assert_allclose(built.box_vectors, 3.0 * np.eye(3), atol=1e-12)
     # source: exact; CHARMM's E = Kb (b - b0)^2, Kθ (θ - θ0)^2 in kcal/mol/Å^2 and
     # kcal/mol/rad^2, θ0 in degrees (CHARMM parameter-file convention, common practice)
@@ -466,7 +472,7 @@ def test_charmm_without_box_has_no_cutoff(tmp_path):
     _write_charmm(tmp_path)
     _write_tri_pdb(tmp_path / "tri.pdb")
     spec = {"charmm": {"psf": "tri.psf", "coordinates": "tri.pdb", "parameters": "tri.prm"}}
-    built = systems.build_system(_spec(spec), tmp_path)
+    built = _build(spec, tmp_path)
     assert built.box_vectors is None
     np.testing.assert_allclose(built.positions, TRI_XYZ, rtol=0, atol=1e-12)
 
@@ -474,20 +480,20 @@ def test_charmm_without_box_has_no_cutoff(tmp_path):
 # -- errors ---------------------------------------------------------------------------
 def test_missing_system_file_names_the_key_and_path(tmp_path):
     with pytest.raises(InputError, match=r"protocol\.yaml: system names .*sub.nothere\.yaml"):
-        systems.load_system(_spec("sub/nothere.yaml"), tmp_path)
+        _build("sub/nothere.yaml", tmp_path)
     with pytest.raises(InputError, match=r"system names .* no bundled system is called 'no-such'"):
-        systems.load_system(_spec("no-such"), tmp_path)
+        _build("no-such", tmp_path)
     (tmp_path / "folder.yaml").mkdir()
     with pytest.raises(InputError, match=r"system names .*folder\.yaml, which is a folder"):
-        systems.load_system(_spec("folder.yaml"), tmp_path)
+        _build("folder.yaml", tmp_path)
 
 
 def test_missing_structure_file_names_the_key_and_path(tmp_path):
     with pytest.raises(InputError, match=r"protocol\.yaml: system\.pdb names .*nothere\.pdb"):
-        systems.build_system(_spec({"pdb": "nothere.pdb"}), tmp_path)
+        _build({"pdb": "nothere.pdb"}, tmp_path)
     _write(tmp_path / "sys.yaml", "amber: {prmtop: x.prmtop, inpcrd: x.inpcrd}\n")
     with pytest.raises(InputError, match=r"sys\.yaml: amber\.prmtop names .*x\.prmtop"):
-        systems.load_system(_spec("sys.yaml"), tmp_path)
+        _build("sys.yaml", tmp_path)
 
 
 @pytest.mark.parametrize("key, spec, name", [
@@ -501,34 +507,34 @@ def test_missing_structure_file_names_the_key_and_path(tmp_path):
 def test_corrupt_structure_files_are_input_errors(tmp_path, key, spec, name):
     (tmp_path / name).write_text("this is not a structure file\n")
     with pytest.raises(InputError, match=key):
-        systems.build_system(_spec(spec), tmp_path)
+        _build(spec, tmp_path)
 
 
 def test_serialized_file_that_is_not_a_system(tmp_path):
     (tmp_path / "int.xml").write_text(openmm.XmlSerializer.serialize(openmm.VerletIntegrator(0.001)))
     _write_tri_pdb(tmp_path / "tri.pdb")
     with pytest.raises(InputError, match=r"system\.serialized\.system .*not a System"):
-        systems.build_system(_spec({"serialized": {"system": "int.xml", "pdb": "tri.pdb"}}), tmp_path)
+        _build({"serialized": {"system": "int.xml", "pdb": "tri.pdb"}}, tmp_path)
 
 
 def test_atom_count_mismatch_names_the_coordinates(tmp_path):
     _write_prmtop(tmp_path / "tri.prmtop")
     _write_inpcrd(tmp_path / "two.inpcrd", TRI_XYZ[:2])
     with pytest.raises(InputError, match=r"system\.amber\.inpcrd: the coordinates hold 2 atoms"):
-        systems.build_system(_spec({"amber": {"prmtop": "tri.prmtop", "inpcrd": "two.inpcrd"}}),
+        _build({"amber": {"prmtop": "tri.prmtop", "inpcrd": "two.inpcrd"}},
                              tmp_path)
 
 
 def test_unknown_key_gets_a_suggestion():
     with pytest.raises(ProtocolError, match=r"system\.forcfield is not a known key\. Did you mean 'forcefield'"):
-        systems.build_system(_spec({"pdb": "x.pdb", "forcfield": ["amber14-all.xml"]}), ".")
+        _build({"pdb": "x.pdb", "forcfield": ["amber14-all.xml"]}, ".")
 
 
 @pytest.mark.parametrize("spec, got", [({"title": "nothing"}, "none of them"),
                                        ({"pdb": "a.pdb", "amber": {}}, "'pdb' and 'amber'")])
 def test_exactly_one_source_key(spec, got):
     with pytest.raises(ProtocolError, match=rf"protocol\.yaml: system must have exactly one source key.*{got}"):
-        systems.build_system(_spec(spec), ".")
+        _build(spec, ".")
 
 
 @pytest.mark.parametrize("spec, key", [
@@ -539,19 +545,19 @@ def test_exactly_one_source_key(spec, got):
 ])
 def test_options_where_they_mean_nothing(spec, key):
     with pytest.raises(ProtocolError, match=key):
-        systems.build_system(_spec(spec), ".")
+        _build(spec, ".")
 
 
 def test_missing_residue_template_names_residue_and_force_field(tmp_path):
     _write_tri_pdb(tmp_path / "tri.pdb")
     with pytest.raises(ProtocolError, match=r"system\.forcefield cannot parametrize.*TRI.*amber14-all\.xml"):
-        systems.build_system(_spec({"pdb": "tri.pdb"}), tmp_path)
+        _build({"pdb": "tri.pdb"}, tmp_path)
 
 
 def test_unknown_force_field_file(tmp_path):
     _write_tri_pdb(tmp_path / "tri.pdb")
     with pytest.raises(InputError, match=r"system\.forcefield\[1\] names 'nothere\.xml'"):
-        systems.build_system(_spec({"pdb": "tri.pdb", "forcefield": ["amber14-all.xml", "nothere.xml"]}),
+        _build({"pdb": "tri.pdb", "forcefield": ["amber14-all.xml", "nothere.xml"]},
                              tmp_path)
 
 
@@ -568,7 +574,7 @@ def test_unknown_force_field_file(tmp_path):
 ])
 def test_bad_units_and_angle_counts(spec, key):
     with pytest.raises(ProtocolError, match=key):
-        systems.build_system(_spec(spec), ".")
+        _build(spec, ".")
 
 
 @pytest.mark.parametrize("extra, key", [
@@ -582,7 +588,7 @@ def test_bad_units_and_angle_counts(spec, key):
 ])
 def test_bad_physics_options(extra, key):
     with pytest.raises(ProtocolError, match=key):
-        systems.build_system(_spec({"peptide": PEPTIDE, **extra}), ".")
+        _build({"peptide": PEPTIDE, **extra}, ".")
 
 
 def test_cutoff_longer_than_half_the_box(tmp_path):
@@ -590,18 +596,18 @@ def test_cutoff_longer_than_half_the_box(tmp_path):
     spec = {"gromacs": {"top": "tri.top", "gro": "tri.gro", "include_dir": "ff"},
             "nonbonded": {"cutoff": "2 nm"}}
     with pytest.raises(ProtocolError, match=r"system\.nonbonded\.cutoff must be at most half the box"):
-        systems.build_system(_spec(spec), tmp_path)
+        _build(spec, tmp_path)
 
 
 def test_bad_peptide_and_bad_include_dir(tmp_path):
     with pytest.raises(ProtocolError, match=r"system\.peptide cannot be built: .*XYZ"):
-        systems.build_system(_spec({"peptide": {"sequence": ["ACE", "XYZ", "NME"]}}), ".")
+        _build({"peptide": {"sequence": ["ACE", "XYZ", "NME"]}}, ".")
     _write_gromacs(tmp_path)
     spec = {"gromacs": {"top": "tri.top", "gro": "tri.gro", "include_dir": "nofolder"}}
     with pytest.raises(InputError, match=r"system\.gromacs\.include_dir names .*nofolder"):
-        systems.build_system(_spec(spec), tmp_path)
+        _build(spec, tmp_path)
 
 
 def test_system_value_of_the_wrong_kind():
     with pytest.raises(ProtocolError, match=r"protocol\.yaml: system must be a system file"):
-        systems.load_system(_spec(5), ".")
+        _build(5, ".")

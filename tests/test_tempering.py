@@ -141,7 +141,7 @@ def run_example(name, folder):
 
 
 def model_of(protocol):
-    return read_model(Node(protocol.system.value["model"], "test", "model"))
+    return protocol.system.source.model
 
 
 def bundled_model(name):

@@ -22,10 +22,8 @@ from scipy.integrate import IntegrationWarning
 from boost.analysis import analyse_run
 from boost.exceptions import (AnalysisError, BoostWarning, ConvergenceWarning, ProtocolError,
                               RunFolderError)
-from boost.models import read_model
 from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
-from boost.spec import Node
 from boost.store import read_ledger
 from boost.units import MOLAR_GAS_CONSTANT
 from conftest import double_well_protocol
@@ -35,8 +33,8 @@ HALF_LINES = {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}}
 
 
 def _model(protocol):
-    """The protocol's inline model, read as boost.models reads it (for the exact references)."""
-    return read_model(Node(protocol.system.value["model"], str(protocol.path), "system.model"))
+    """The protocol's model, as read from it (for the exact references)."""
+    return protocol.system.source.model
 
 
 def _run(folder, text, name="protocol.yaml"):

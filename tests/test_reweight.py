@@ -82,6 +82,16 @@ def test_harmonic_oscillators_match_pymbar_analytic_free_energies():
     assert result.f_k[0] == 0.0 and result.df_k[0] == 0.0
 
 
+def test_a_large_problem_started_from_a_thinned_solution_equals_pymbar_from_zero():
+    # source: library — pymbar.MBAR's own solution from its default start; boost starts a
+    # problem of more than 20,000 samples from the solution on a thinned set, which may
+    # change the path to the answer but not the answer
+    system = pymbar.testsystems.HarmonicOscillatorsTestCase(O_k=(0, 1, 2, 3, 4), K_k=(1, 2, 4, 8, 16))
+    _, u_kn, N_k, _ = system.sample(N_k=(6000,) * 5, mode="u_kn", seed=5)
+    assert u_kn.shape[1] > 20_000
+    np.testing.assert_allclose(Reweighting(u_kn, N_k).f_k, pymbar.MBAR(u_kn, N_k).f_k, atol=1e-8)
+
+
 def test_wrapper_equals_direct_pymbar_call():
     # source: library — pymbar.MBAR on the same u_kn
     system = pymbar.testsystems.HarmonicOscillatorsTestCase()

@@ -5,6 +5,7 @@ walker per window and no swaps, replica exchange adds swaps between walkers.
 """
 
 import logging
+import time
 import sqlite3
 from contextlib import contextmanager
 from dataclasses import replace
@@ -17,7 +18,9 @@ from .engine import PlatformChoice, derive_seeds
 from .exceptions import BoostError, RunFolderError, SimulationError
 from .exchange import swap_for_cycle
 from .plan import describe_run, frame_bytes, ledger_header, make_plan
+from .lineage import check_extension
 from .store import FrameWriter, RunFolder, choose_checkpoint, write_checkpoint
+from .store.folder import OtherProtocol
 from .workers import WalkerSetup, open_workers
 
 log = logging.getLogger("boost")
@@ -44,9 +47,10 @@ class Scheduler:
         self.run_id = None                       # the folder's, once claimed
 
     def run(self):
-        """Run to the end; returns the folder path. Resumes a partial run of the same protocol."""
+        """Run to the end; returns the folder path. Resumes a partial run of the same protocol,
+        and continues a run whose protocol differs only by a longer production (boost.lineage)."""
         protocol = self.plan.protocol
-        self.folder.state_for(protocol.text)
+        extending = self._extends()            # checked before anything in the folder changes
         self.run_id = self.folder.claim()        # before the lock file: a foreign 'lock' is never opened
         lock = self.folder.lock()
         stale = lock.acquire()
@@ -54,10 +58,26 @@ class Scheduler:
             if stale:
                 log.info("taking over the run folder from %s, which is no longer running", stale)
             with _disk_errors(self.folder):
+                if extending and self._extends():
+                    self.folder.record_extension(protocol.text, protocol.sha256, time.strftime("%Y-%m-%dT%H:%M:%S%z"))
+                    log.info("%s: extending the run to %d production cycles", self.folder,
+                             protocol.run.production_cycles)
                 self._run(self.folder.state_for(protocol.text) == "same")
         finally:
             lock.release()
         return self.folder.path
+
+    def _extends(self):
+        """False for a new folder or this very protocol's; True when the protocol extends the
+        one the folder recorded; RunFolderError otherwise."""
+        try:
+            self.folder.state_for(self.plan.protocol.text)
+            return False
+        except OtherProtocol:
+            if not self.folder.ledger.exists():
+                raise
+        check_extension(self.folder, self.folder.recorded_protocol_text(), self.plan.protocol)
+        return True
 
     def _run(self, resume):
         plan, protocol = self.plan, self.plan.protocol

@@ -25,6 +25,10 @@ OWN_ENTRIES = frozenset({IDENTITY, PROTOCOL, PROVENANCE, LEDGER, LOCK, "topology
                          "analysis", LEDGER + "-journal", LEDGER + "-wal", LEDGER + "-shm"})
 
 
+class OtherProtocol(RunFolderError):
+    """A run folder of boost's whose protocol copy differs from the protocol given."""
+
+
 def write_atomically(path, data):
     """Write bytes or text to ``path`` through a temporary file and a rename."""
     path = Path(path)
@@ -78,8 +82,8 @@ def check_folder_for(path, protocol_text):
     except OSError as err:
         raise RunFolderError(f"{copy}: cannot be read ({err.strerror or err}).") from None
     if hashlib.sha256(recorded).hexdigest() != protocol_hash(protocol_text):
-        raise RunFolderError(f"{path}: belongs to another protocol (its {PROTOCOL} differs); "
-                             "choose another folder or remove it.")
+        raise OtherProtocol(f"{path}: belongs to another protocol (its {PROTOCOL} differs); "
+                            "choose another folder or remove it.")
     return "same"
 
 

@@ -152,6 +152,18 @@ class Ledger:
             self.connection.executemany("INSERT INTO frames VALUES (?, ?, ?, ?)",
                                         [tuple(int(x) for x in row) for row in frames])
 
+    def amend_header(self, changes):
+        """Replace meta entries (``{key: value}``) and the header digest, in one transaction:
+        how an extended run records the protocol it now follows."""
+        with self.connection:
+            self.connection.executemany("INSERT OR REPLACE INTO meta VALUES (?, ?)",
+                                        [(key, json.dumps(value)) for key, value in changes.items()])
+            meta_rows = [(k.encode(), v.encode()) for k, v in self.connection.execute("SELECT key, value FROM meta")]
+            condition_rows = [(i, t, c.encode(), s.encode()) for i, t, c, s in
+                              self.connection.execute("SELECT * FROM conditions ORDER BY condition")]
+            self.connection.execute("UPDATE meta SET value = ? WHERE key = ?",
+                                    (json.dumps(_header_digest(meta_rows, condition_rows)), _HEADER_KEY))
+
     def truncate_after(self, cycle):
         """Forget every record after ``cycle`` (-1: all), in one transaction."""
         with self.connection:

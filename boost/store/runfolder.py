@@ -14,7 +14,7 @@ from .checkpoints import choose_checkpoint, has_checkpoint
 from .folder import (CHECKPOINTS, FRAMES, IDENTITY, LEDGER, PROTOCOL, PROVENANCE, FolderLock, check_folder_for,
                      claim_folder, write_atomically)
 from .frames import inspect_frames
-from .ledger import Ledger, scan_ledger
+from .ledger import Ledger, read_ledger_metadata, scan_ledger
 
 
 class RunFolder:
@@ -59,6 +59,26 @@ class RunFolder:
         ledger = Ledger(self.ledger, coordinate_names=tuple(ledger_header["coordinates"]))
         ledger.create(conditions, ledger_header)
         return ledger
+
+    def recorded_protocol_text(self):
+        """The protocol text the verified ledger records (the one its data were made with)."""
+        return read_ledger_metadata(self.path)["protocol_text"]
+
+    def record_extension(self, protocol_text, protocol_sha256, when):
+        """Make the folder follow a protocol that extends the one it records: the ledger's
+        header first (so a kill midway leaves the new protocol on record), then the protocol
+        copy, then an entry in provenance.json's ``extensions``."""
+        metadata = read_ledger_metadata(self.path)
+        ledger = Ledger(self.ledger)
+        try:
+            ledger.amend_header({"protocol_text": protocol_text, "protocol_sha256": protocol_sha256})
+        finally:
+            ledger.close()
+        write_atomically(self.protocol_copy, protocol_text)
+        provenance = self.read_provenance()
+        provenance.setdefault("extensions", []).append(
+            {"from_protocol_sha256": metadata["protocol_sha256"], "to_protocol_sha256": protocol_sha256, "at": when})
+        write_atomically(self.provenance, json.dumps(provenance, indent=2))
 
     def open_ledger(self, coordinate_names):
         """The ledger's writer, to go on recording (after resume_point has verified it)."""

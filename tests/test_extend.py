@@ -28,7 +28,8 @@ LADDER = {"temperatures": "[300 K, 400 K]", "exchange": "{pairs: adjacent}",
 
 
 def text(production, **changes):
-    return double_well_protocol(**LADDER, run={"production": production, "checkpoint_every": "1 ps"}, **changes)
+    keys = {**LADDER, **changes}
+    return double_well_protocol(**keys, run={"production": production, "checkpoint_every": "1 ps"})
 
 
 def files_of(folder):
@@ -42,6 +43,20 @@ def longer(tmp_path_factory):
     base = tmp_path_factory.mktemp("extend")
     (base / "long.yaml").write_text(text("10 ps"))
     return run_protocol(load_protocol(base / "long.yaml"), base / "long", progress=False)
+
+
+def test_on_the_deterministic_cpu_platform_too(tmp_path):
+    # CPU with DeterministicForces continues a checkpoint bit for bit (measured here: tests/REFERENCES.md)
+    cpu = {"platform": "{name: CPU, threads: 1, workers: 1}"}
+    (tmp_path / "long.yaml").write_text(text("4 ps", **cpu))
+    reference = run_protocol(load_protocol(tmp_path / "long.yaml"), tmp_path / "long", progress=False)
+    (tmp_path / "p.yaml").write_text(text("2 ps", **cpu))
+    folder = run_protocol(load_protocol(tmp_path / "p.yaml"), tmp_path / "run", progress=False)
+    (tmp_path / "p.yaml").write_text(text("4 ps", **cpu))
+    run_protocol(load_protocol(tmp_path / "p.yaml"), folder, progress=False)
+    a, b = read_ledger(reference), read_ledger(folder)
+    assert np.array_equal(a.potential_rt, b.potential_rt) and np.array_equal(a.values_rtc, b.values_rtc)
+    assert np.array_equal(a.condition_rt, b.condition_rt) and a.frame_crcs == b.frame_crcs
 
 
 def test_a_longer_production_continues_the_run_bit_for_bit(tmp_path, longer):
@@ -88,6 +103,9 @@ def test_a_changed_frame_interval_may_come_with_the_extension(tmp_path):
 @pytest.mark.parametrize("change, named", [
     ({"seed": 6}, "seed"),
     ({"temperature": "310 K"}, "temperature"),
+    ({"timestep": "1 fs"}, "timestep"),
+    ({"system": {"model": "{name: double_well, barrier: 6 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}"}},
+     r"system\.model\.barrier"),
 ])
 def test_any_other_change_is_refused_naming_the_keys(tmp_path, change, named):
     (tmp_path / "p.yaml").write_text(text("2 ps"))

@@ -182,5 +182,58 @@ def repeat(ctx, source, folder, revision, against, quiet):
         ctx.exit(1)
 
 
+@main.command()
+@click.argument("protocol_file", type=click.Path(path_type=Path))   # read_text explains a folder in one line
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The protocol to write; must not exist yet.")
+@click.option("--from", "source", type=click.Path(path_type=Path),
+              help="Plan from this run folder instead of running a trial.")
+@click.option("--refine", is_flag=True,
+              help="With --from a run of PROTOCOL_FILE: keep its conditions, add extra ones only between "
+                   "neighbours whose measured swap acceptance or overlap is below the target.")
+@click.option("--trial", "trial_length", help="Production of the trial run per condition (default: '20 ps').")
+@click.option("--trial-folder", type=click.Path(file_okay=False, path_type=Path),
+              help="Keep the trial's run folder here (default: a temporary folder, removed afterwards).")
+@click.option("--acceptance", help="Target neighbour swap acceptance of a temperature ladder (default 0.3).")
+@click.option("--overlap", help="Target MBAR overlap between neighbour windows (default 0.05).")
+@click.option("--error", help="Target standard error of ΔG between the first two basins, e.g. '0.1 kcal/mol' "
+                              "or '0.2 kT' (kT at the protocol's temperature); sets the production.")
+@click.option("--quiet", is_flag=True, help="No progress bar for the trial.")
+def propose(protocol_file, output, source, refine, trial_length, trial_folder, acceptance, overlap, error, quiet):
+    """Propose a new protocol from PROTOCOL_FILE and a short trial (or a run folder): a
+    temperature ladder or umbrella windows spaced for a target swap acceptance or overlap,
+    the production for a target error and the wall time it takes here."""
+    from .exceptions import ProtocolError, warnings_to_log
+    from .proposal import (DEFAULT_TRIAL, propose as plan_protocol, read_source, read_targets, run_trial,
+                           trial_folder as trial_place, what_to_plan, write_proposal)
+    from .protocol import load_protocol
+    from .units import parse_quantity
+
+    if output.exists() or output.is_symlink():
+        raise ProtocolError(f"{output}: already exists; boost propose never overwrites a file: choose another -o.")
+    protocol = load_protocol(protocol_file)
+    what_to_plan(protocol)
+    targets = read_targets(protocol, acceptance=acceptance, overlap=overlap, error=error)
+    if source is not None and (trial_length is not None or trial_folder is not None):
+        raise ProtocolError("--from plans from an existing run folder; --trial and --trial-folder are for a new "
+                            "trial: give one or the other.")
+    if refine and source is None:
+        raise ProtocolError("--refine needs --from: the run folder of PROTOCOL_FILE whose conditions it refines.")
+    with warnings_to_log():
+        if source is not None:
+            proposal = plan_protocol(protocol, read_source(source), targets, output, refine=refine)
+        else:
+            length = parse_quantity(trial_length or DEFAULT_TRIAL, "time", place="--trial")
+            if not length > 0:
+                raise ProtocolError(f"--trial must be a positive time, such as '20 ps'. Got {trial_length!r} instead.")
+            with trial_place(trial_folder) as folder:
+                trial = run_trial(protocol, length, folder, progress=not quiet)
+                proposal = plan_protocol(protocol, trial, targets, output)
+    written = write_proposal(proposal, output)
+    for line in proposal.report:
+        click.echo(line)
+    click.echo(f"written: {written}")
+
+
 if __name__ == "__main__":
     main()

@@ -45,6 +45,7 @@ class Scheduler:
         self.seeds, self.swap_seed = derive_seeds(protocol.seed, plan.n_walkers)
         self.retries_left = protocol.run.retries
         self.run_id = None                       # the folder's, once claimed
+        self.loop_timing = (0, 0.0)              # (cycles, wall seconds) of the cycle loop of the last run()
 
     def run(self):
         """Run to the end; returns the folder path. Resumes a partial run of the same protocol,
@@ -157,6 +158,7 @@ class Scheduler:
         cycle_ps = run.steps_per_cycle * plan.protocol.timestep
         bar = tqdm(total=run.n_cycles, initial=start, unit="cycle", disable=not self.progress,
                    desc="boost run", dynamic_ncols=True)
+        began = time.perf_counter()
         with bar:
             cycle = start
             while cycle < run.n_cycles:
@@ -182,6 +184,7 @@ class Scheduler:
                     self._checkpoint(workers, cycle, assignment, rng)
                 bar.update()
                 cycle += 1
+        self.loop_timing = (cycle - start, time.perf_counter() - began)
 
     def _retry(self, err, workers, ledger, frames, cycle):
         """After a blow-up: back to the last checkpoint with fresh velocities, a bounded number of times."""

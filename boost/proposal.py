@@ -27,11 +27,11 @@ import numpy as np
 
 from .exceptions import AnalysisError, BoostWarning, ProtocolError, RunFolderError
 from .ladder_design import EnergyMoments, design_ladder, insert_rungs
-from .protocol import Bins, UmbrellaAxis, parse_protocol
+from .protocol import UmbrellaAxis, parse_protocol
 from .protocol_dump import dump_protocol
 from .system_spec import FileRef
 from .units import beta, energy_in, format_quantity, parse_quantity
-from .window_design import (design_windows, insert_windows, neighbour_pairs, predict_neighbour_overlaps,
+from .window_design import (MARGIN, design_windows, insert_windows, neighbour_pairs, predict_neighbour_overlaps,
                             profile_on_grid)
 
 #: A condition needs this many statistically independent samples for boost's verdicts to
@@ -175,7 +175,7 @@ def _measure_here(protocol):
     run in a temporary folder (building the walkers is not counted)."""
     cycle_ps = protocol.run.steps_per_cycle * protocol.timestep
     short = replace(protocol.run, equilibration_cycles=0, production_cycles=TIMING_CYCLES, frame_every=0,
-                    checkpoint_every=TIMING_CYCLES, minimise=False)
+                    checkpoint_every=TIMING_CYCLES)
     short = parse_protocol(dump_protocol(replace(protocol, run=short)), protocol.path)
     with _temporary() as folder:
         rate, how = _timed_run(short, folder)
@@ -281,9 +281,8 @@ def propose(protocol, source, targets, output, *, refine=False):
         analysis = _quiet_analysis(source.folder)
         new, pairs, measured, lines = _plan_ladder(protocol, source, analysis, targets, refine)
     else:
-        bins = _fine_bins(protocol)
-        analysis = _quiet_analysis(source.folder, bins=(bins,))
-        new, pairs, measured, lines = _plan_windows(protocol, analysis, bins, targets, refine)
+        analysis = _quiet_analysis(source.folder)
+        new, pairs, measured, lines = _plan_windows(protocol, source, analysis, targets, refine)
     run, production_lines = _production(protocol, run_protocol, data, analysis, targets,
                                         _falls_short(run_protocol, analysis, what, targets))
     new = replace(new, run=run)
@@ -342,29 +341,60 @@ def _plan_ladder(protocol, source, analysis, targets, refine):
     return new, pairs, measured, lines
 
 
-def _fine_bins(protocol):
-    """PMF bins half as wide as the stiffest window's standard deviation, over the windows'
-    range and four such deviations beyond it (the whole circle for a dihedral)."""
+#: Most samples per condition the planning PMF uses (evenly spaced over the production).
+PROFILE_SAMPLES = 2000
+
+
+def _planning_profile(folder, protocol):
+    """The run's PMF along the protocol's umbrella coordinate, in kT at its temperature, on
+    bins one window width wide (the stiffest window's standard deviation), as a Profile.
+
+    MBAR (boost.reweight) over every production sample of the run, consecutive ones
+    included, up to PROFILE_SAMPLES per condition: for the shape of a PMF more samples
+    beat fewer independent ones, and no error bar is wanted here.
+    """
+    from .analysis import compute_sample_reduced_potentials, load_run
+    from .conditions import compute_unbiased_reduced_potential
+    from .reweight import Reweighting
+
     axis = protocol.umbrella[0]
+    periodic = protocol.coordinates[axis.coordinate].periodic
     width = 1.0 / math.sqrt(beta(protocol.temperature) * max(axis.springs))
-    if protocol.coordinates[axis.coordinate].periodic:
-        edges = np.linspace(-math.pi, math.pi, min(720, max(36, math.ceil(4 * math.pi / width))) + 1)
+    run_protocol, data = load_run(folder)
+    production = np.flatnonzero(data.production_t)
+    walkers, cycles, N_k = [], [], []
+    for k in range(len(data.conditions)):
+        walker_t = np.argmax(data.condition_rt[:, production] == k, axis=0)
+        keep = np.unique(np.linspace(0, production.size - 1, min(production.size, PROFILE_SAMPLES)).astype(int))
+        walkers.append(walker_t[keep])
+        cycles.append(production[keep])
+        N_k.append(keep.size)
+    walkers, cycles = np.concatenate(walkers), np.concatenate(cycles)
+    u_kn = compute_sample_reduced_potentials(data, run_protocol, data.conditions, walkers, cycles)
+    u_n = compute_unbiased_reduced_potential(protocol.temperature, data.potential_rt[walkers, cycles],
+                                             volume_n=data.volume_rt[walkers, cycles], pressure=protocol.pressure)
+    values = data.values_rtc[walkers, cycles, data.coordinate_names.index(axis.coordinate)]
+    if periodic:
+        edges = np.linspace(-math.pi, math.pi, min(720, max(36, math.ceil(2 * math.pi / width))) + 1)
+        lower, upper = -math.pi, math.pi
     else:
-        low, high = min(axis.centres) - 4 * width, max(axis.centres) + 4 * width
-        edges = np.linspace(low, high, min(2000, max(20, math.ceil(2 * (high - low) / width))) + 1)
-    return Bins(axis.coordinate, tuple(edges.tolist()))
+        lower, upper = min(axis.centres) - 4 * width, max(axis.centres) + 4 * width
+        edges = np.linspace(min(lower, values.min()), max(upper, values.max()) + 1e-9,
+                            min(2000, max(20, math.ceil((upper - lower) / width))) + 1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", BoostWarning)
+        pmf = Reweighting(u_kn, np.array(N_k), errors=False).compute_pmf(u_n, values, [edges])
+    f = np.where(pmf.counts > 0, pmf.f, np.nan)
+    return profile_on_grid(pmf.centres[0], f, periodic=periodic, lower=lower, upper=upper, step=width / 20)
 
 
-def _plan_windows(protocol, analysis, bins, targets, refine):
+def _plan_windows(protocol, source, analysis, targets, refine):
     axis = protocol.umbrella[0]
     coordinate = protocol.coordinates[axis.coordinate]
     b = beta(protocol.temperature)
-    edges = bins.edges
     width = 1.0 / math.sqrt(b * max(axis.springs))
-    pmf = next(p for p in analysis.profiles if p.coordinates == (axis.coordinate,))
-    centres = np.radians(pmf.centres[0]) if coordinate.periodic else np.asarray(pmf.centres[0])
-    profile = profile_on_grid(centres, np.where(pmf.counts > 0, pmf.f, np.nan), periodic=coordinate.periodic,
-                              lower=edges[0], upper=edges[-1], step=width / 20)
+    profile = _planning_profile(source.folder, protocol)
+    share = _sample_share(source.folder, analysis, coordinate.periodic)
     order = np.argsort(axis.centres, kind="stable")
     sorted_c = [axis.centres[i] for i in order]
     sorted_k = [axis.springs[i] for i in order]
@@ -374,12 +404,13 @@ def _plan_windows(protocol, analysis, bins, targets, refine):
         measured = tuple((i, j, float(min(overlap[order[i], order[j]], overlap[order[j], order[i]])))
                          for i, j in neighbour_pairs(len(sorted_c), coordinate.periodic))
         poor = [(i, j) for i, j, value in measured if not value >= targets.overlap]
-        design = insert_windows(profile, sorted_c, sorted_k, poor, b, targets.overlap)
+        design = insert_windows(profile, sorted_c, sorted_k, poor, b, targets.overlap, share=share)
         measured = tuple((_show(sorted_c[i], coordinate), _show(sorted_c[j], coordinate), value)
                          for i, j, value in measured)
     else:
-        design = design_windows(profile, sorted_c[0], sorted_c[-1], min(axis.springs), b, targets.overlap)
-    design = _rounded(design, coordinate, width, profile, b)
+        design = design_windows(profile, sorted_c[0], sorted_c[-1], min(axis.springs), b, targets.overlap,
+                                share=share)
+    design = _rounded(design, coordinate, width, profile, b, share)
     shown = [_show(c, coordinate) for c in design.centres]
     pairs = [(shown[i], shown[j], p) for (i, j), p in zip(neighbour_pairs(len(shown), coordinate.periodic),
                                                            design.overlap)]
@@ -387,7 +418,7 @@ def _plan_windows(protocol, analysis, bins, targets, refine):
     head = (f"umbrella windows along {axis.coordinate}: {len(design.centres)} "
             + (f"({len(design.added)} added between neighbours whose measured overlap is below "
                f"{targets.overlap:g}) " if refine else f"from {shown[0]} to {shown[-1] if not coordinate.periodic else 'around the circle'}, spring {spring_text} (the protocol's{' softest' if len(set(axis.springs)) > 1 else ''}), ")
-            + f"for neighbour MBAR overlap of at least {targets.overlap:g} (planned for {targets.overlap * 1.25:g})")
+            + f"for neighbour MBAR overlap of at least {targets.overlap:g} (planned for {targets.overlap * MARGIN:g}, each window weighted by its expected independent samples)")
     lines = [head] + [f"  {a} - {b_}: predicted overlap {p:.3f}" for a, b_, p in pairs]
     if refine:
         lines += [f"  measured in the run: {a} - {b_}: {p:.3f}" for a, b_, p in measured if not p >= targets.overlap]
@@ -395,13 +426,31 @@ def _plan_windows(protocol, analysis, bins, targets, refine):
     return new, pairs, measured, lines
 
 
-def _rounded(design, coordinate, width, profile, b):
+def _sample_share(folder, analysis, periodic):
+    """centre -> 1 / g: the relative count of independent samples a window there gets, g
+    (statistical inefficiency) interpolated between the source run's windows."""
+    from .analysis import load_run
+
+    run_protocol, _ = load_run(folder)
+    centres = np.asarray(run_protocol.umbrella[0].centres)
+    share = 1.0 / np.maximum(1.0, np.asarray(analysis.g_k, dtype=float))
+    order = np.argsort(centres)
+    centres, share = centres[order], share[order]
+    if periodic:
+        return lambda c: float(np.interp(c, centres, share, period=2 * math.pi))
+    return lambda c: float(np.interp(c, centres, share))
+
+
+def _rounded(design, coordinate, width, profile, b, share):
     """New centres rounded to a whole multiple of a power of ten below a twentieth of a
     window's width (in degrees on an angle), so the written protocol reads easily; the
     predicted overlaps are recomputed for the rounded centres."""
     angle = coordinate.unit == "rad"
     exponent = math.floor(math.log10((math.degrees(width) if angle else width) / 20))
-    kept = set(range(len(design.centres))) - set(design.added) if design.added else {0, len(design.centres) - 1}
+    if design.added:
+        kept = set(range(len(design.centres))) - set(design.added)
+    else:                                      # the protocol's ends (its first centre on a circle)
+        kept = {0} if coordinate.periodic else {0, len(design.centres) - 1}
     centres = []
     for i, c in enumerate(design.centres):
         if i in kept:
@@ -409,7 +458,7 @@ def _rounded(design, coordinate, width, profile, b):
         else:
             shown = round(math.degrees(c) if angle else c, -exponent)
             centres.append(math.radians(shown) if angle else shown)
-    overlap = predict_neighbour_overlaps(profile, centres, design.springs, b)
+    overlap = predict_neighbour_overlaps(profile, centres, design.springs, b, share)
     return replace(design, centres=tuple(centres), overlap=overlap)
 
 

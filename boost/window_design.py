@@ -14,9 +14,16 @@ over samples n becomes an integral over their mixture density Σ_l N_l p_l, so
     O_ij = N_j ∫ p_i(ξ) p_j(ξ) / Σ_l N_l p_l(ξ) dξ,
 
 which for equal sample counts is ∫ p_i p_j / Σ_l p_l dξ (for two windows ∫ p_i p_j / (p_i
-+ p_j) dξ, at most ½). The umbrella energies depend on ξ only, so the ξ-marginal densities
-give the overlap of the full ensembles. tests/test_propose.py checks the integral against
-pymbar's compute_overlap on sampled data.
++ p_j) dξ, at most ½). It depends on the counts only through their ratios. The umbrella
+energies depend on ξ only, so the ξ-marginal densities give the overlap of the full
+ensembles. tests/test_propose.py checks the integral against pymbar's compute_overlap on
+sampled data.
+
+A run's analysis counts a window's statistically independent samples, production / g,
+and g (the statistical inefficiency) differs between windows: a window where a slow
+degree of freedom relaxes has few, and its measured overlaps, min(O_ij, O_ji), fall with
+them. The planner therefore weighs each window by a relative count 1 / g(c), g
+interpolated along the coordinate from the source run's windows.
 
 Lengths in the coordinate's unit (nm or rad), springs in kJ/mol per unit², β in mol/kJ.
 """
@@ -27,8 +34,9 @@ import numpy as np
 from scipy.special import logsumexp
 
 #: The planner aims each neighbour pair at this multiple of the target overlap: the trial's
-#: PMF carries statistical error and a run's measured overlap scatters around its prediction.
-MARGIN = 1.25
+#: PMF and statistical inefficiencies carry statistical error, and a run's measured overlap
+#: scatters around its prediction.
+MARGIN = 1.5
 _TWO_PI = 2.0 * np.pi
 #: The highest two-window overlap the planner aims at (two identical windows give ½).
 _MOST = 0.49
@@ -99,21 +107,24 @@ def compute_window_densities(profile, centres, springs, beta):
     return np.exp(log_p)
 
 
-def compute_predicted_overlap(densities, step):
-    """The MBAR overlap matrix the windows' densities predict for equal sample counts.
+def compute_predicted_overlap(densities, step, counts=None):
+    """The MBAR overlap matrix the windows' densities predict.
 
     Parameters
     ----------
     densities : ndarray, shape (n_windows, n_grid), normalised on a grid of spacing ``step``
+    counts : ndarray, shape (n_windows,), optional
+        Relative sample counts N_k (only ratios matter); equal when not given.
 
     Returns
     -------
     ndarray, shape (n_windows, n_windows); rows sum to 1
     """
-    mixture = densities.sum(axis=0)
+    counts = np.ones(len(densities)) if counts is None else np.asarray(counts, dtype=float)
+    mixture = counts @ densities
     inside = mixture > 0
     p = densities[:, inside]
-    return (p / mixture[inside]) @ p.T * step
+    return (p / mixture[inside]) @ p.T * step * counts[None, :]
 
 
 def neighbour_pairs(n_windows, periodic):
@@ -122,9 +133,14 @@ def neighbour_pairs(n_windows, periodic):
     return pairs + [(n_windows - 1, 0)] if periodic and n_windows > 2 else pairs
 
 
-def predict_neighbour_overlaps(profile, centres, springs, beta):
-    """min(O_ij, O_ji) for each neighbour pair of windows sorted along the coordinate."""
-    overlap = compute_predicted_overlap(compute_window_densities(profile, centres, springs, beta), profile.step)
+def predict_neighbour_overlaps(profile, centres, springs, beta, share=None):
+    """min(O_ij, O_ji) for each neighbour pair of windows sorted along the coordinate.
+
+    ``share``: callable, centre -> relative count of independent samples (None: equal).
+    """
+    counts = None if share is None else [share(c) for c in centres]
+    overlap = compute_predicted_overlap(compute_window_densities(profile, centres, springs, beta), profile.step,
+                                        counts)
     return tuple(float(min(overlap[i, j], overlap[j, i])) for i, j in neighbour_pairs(len(centres), profile.periodic))
 
 
@@ -145,30 +161,39 @@ class WindowDesign:
     added: tuple = ()
 
 
-def _pair_overlap(profile, a, b, spring, beta):
+def _pair_overlap(profile, a, b, spring, beta, share):
     p = compute_window_densities(profile, (a, b), (spring, spring), beta)
-    return compute_predicted_overlap(p, profile.step)[0, 1]
+    overlap = compute_predicted_overlap(p, profile.step, None if share is None else (share(a), share(b)))
+    return min(overlap[0, 1], overlap[1, 0])
 
 
-def _greedy(profile, first, end, spring, beta, aim):
+def _greedy(profile, first, end, spring, beta, aim, share):
     """Centres from ``first`` towards ``end`` (``end`` itself included on an open coordinate;
     on a circle it is ``first`` again): each step the longest, on a grid of a tenth of a
     window's width, whose two-window overlap stays at or above ``aim``."""
     stride = min(1.0 / np.sqrt(beta * spring), end - first) / 10.0
     centres = [first]
-    while _pair_overlap(profile, centres[-1], end, spring, beta) < aim:
+    # on a circle ``end`` is ``first`` again, and a displacement beyond half a turn wraps:
+    # the circle is closed only from less than half a turn away, and no step exceeds it
+    longest = np.pi if profile.periodic else np.inf
+
+    def open_gap():
+        return end - centres[-1] > longest or _pair_overlap(profile, centres[-1], end, spring, beta, share) < aim
+
+    while open_gap():
         step = stride
-        while centres[-1] + step + stride < end and \
-                _pair_overlap(profile, centres[-1], centres[-1] + step + stride, spring, beta) >= aim:
+        while centres[-1] + step + stride < end and step + stride <= longest and \
+                _pair_overlap(profile, centres[-1], centres[-1] + step + stride, spring, beta, share) >= aim:
             step += stride
         centres.append(centres[-1] + step)
     return centres if profile.periodic else centres + [end]
 
 
-def design_windows(profile, first, last, spring, beta, target, *, margin=MARGIN):
+def design_windows(profile, first, last, spring, beta, target, *, margin=MARGIN, share=None):
     """Windows from ``first`` to ``last`` (on a periodic coordinate, around the whole circle
     from ``first``; ``last`` is ignored) whose neighbours all predict an overlap of at least
     ``target`` × ``margin`` when every window is present, denser where F is steep.
+    ``share``: callable, centre -> relative count of independent samples (None: equal).
 
     Windows are placed greedily by the two-window overlap, aiming at ``target`` × ``margin``;
     the aim is raised until the overlap with all windows present (what a run's MBAR
@@ -182,9 +207,9 @@ def design_windows(profile, first, last, spring, beta, target, *, margin=MARGIN)
     end = first + _TWO_PI if profile.periodic else last
 
     def plan(aim):
-        centres = _greedy(profile, first, end, spring, beta, aim)
+        centres = _greedy(profile, first, end, spring, beta, aim, share)
         centres = _wrap_sorted(centres) if profile.periodic else centres
-        return centres, predict_neighbour_overlaps(profile, centres, (spring,) * len(centres), beta)
+        return centres, predict_neighbour_overlaps(profile, centres, (spring,) * len(centres), beta, share)
 
     aim = goal
     centres, overlap = plan(aim)
@@ -209,7 +234,7 @@ def _wrap_sorted(centres):
     return sorted(float(c) for c in wrapped)
 
 
-def insert_windows(profile, centres, springs, poor_pairs, beta, target, *, margin=MARGIN):
+def insert_windows(profile, centres, springs, poor_pairs, beta, target, *, margin=MARGIN, share=None):
     """The windows with extra ones inside each poor neighbour pair (i, j): the fewest evenly
     spaced ones (at least one, with the pair's softer spring) for which every sub-pair
     predicts ``target`` × ``margin`` with all windows present.
@@ -241,7 +266,7 @@ def insert_windows(profile, centres, springs, poor_pairs, beta, target, *, margi
             every_c = [*trial_c, *others]
             every_k = [springs[i], *[spring] * count, springs[j], *other_k]
             overlap = compute_predicted_overlap(compute_window_densities(profile, every_c, every_k, beta),
-                                                profile.step)
+                                                profile.step, None if share is None else [share(c) for c in every_c])
             if all(min(overlap[n, n + 1], overlap[n + 1, n]) >= goal for n in range(count + 1)):
                 break
         extra_c += [float(c) for c in trial_c[1:-1]]
@@ -250,4 +275,5 @@ def insert_windows(profile, centres, springs, poor_pairs, beta, target, *, margi
     all_c = [float(np.asarray(centres + extra_c)[n]) for n in order]
     all_k = [float(np.asarray(springs + extra_k)[n]) for n in order]
     added = tuple(int(np.flatnonzero(order == len(centres) + m)[0]) for m in range(len(extra_c)))
-    return WindowDesign(tuple(all_c), tuple(all_k), predict_neighbour_overlaps(profile, all_c, all_k, beta), added)
+    return WindowDesign(tuple(all_c), tuple(all_k), predict_neighbour_overlaps(profile, all_c, all_k, beta, share),
+                        added)

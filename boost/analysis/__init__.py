@@ -31,14 +31,11 @@ __all__ = ["Analysis", "BasinResult", "ProfileResult", "Uncertainty", "Verdicts"
            "select_samples", "thinning_stride", "MBAR_COPIES", "MBAR_SHARE", "MIN_SAMPLES"]
 
 
-def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, uncertainty=None, bins=None):
+def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, uncertainty=None):
     """Analyse a run folder; see :class:`Analysis`. ``temperature`` in K; ``memory`` in
     bytes overrides the protocol's analysis.memory; ``uncertainty`` ('auto', 'asymptotic'
-    or 'bootstrap') its analysis.uncertainty.method; ``bins`` (a tuple of
-    boost.protocol.Bins) its analysis.bins."""
+    or 'bootstrap') its analysis.uncertainty.method."""
     protocol, data = load_run(folder)
-    if bins is not None:
-        protocol = replace(protocol, analysis=replace(protocol.analysis, bins=tuple(bins)))
     if uncertainty is not None:
         if uncertainty not in UNCERTAINTY_METHODS:
             raise AnalysisError(f"uncertainty must be one of {', '.join(UNCERTAINTY_METHODS)}; got {uncertainty!r}")

@@ -211,6 +211,8 @@ def propose(protocol_file, output, source, refine, trial_length, trial_folder, a
 
     if output.exists() or output.is_symlink():
         raise ProtocolError(f"{output}: already exists; boost propose never overwrites a file: choose another -o.")
+    if not output.parent.is_dir():
+        raise ProtocolError(f"{output}: its folder {output.parent} does not exist; make it or choose another -o.")
     protocol = load_protocol(protocol_file)
     what_to_plan(protocol)
     targets = read_targets(protocol, acceptance=acceptance, overlap=overlap, error=error)

@@ -403,7 +403,8 @@ def _plan_windows(protocol, source, analysis, targets, refine):
         overlap = analysis.overlap
         measured = tuple((i, j, float(min(overlap[order[i], order[j]], overlap[order[j], order[i]])))
                          for i, j in neighbour_pairs(len(sorted_c), coordinate.periodic))
-        poor = [(i, j) for i, j, value in measured if not value >= targets.overlap]
+        # the planner's margin here too: a short run's measured overlap scatters as much as a prediction
+        poor = [(i, j) for i, j, value in measured if not value >= targets.overlap * MARGIN]
         design = insert_windows(profile, sorted_c, sorted_k, poor, b, targets.overlap, share=share)
         measured = tuple((_show(sorted_c[i], coordinate), _show(sorted_c[j], coordinate), value)
                          for i, j, value in measured)
@@ -417,11 +418,12 @@ def _plan_windows(protocol, source, analysis, targets, refine):
     spring_text = format_quantity(min(axis.springs), coordinate.spring_dimension)
     head = (f"umbrella windows along {axis.coordinate}: {len(design.centres)} "
             + (f"({len(design.added)} added between neighbours whose measured overlap is below "
-               f"{targets.overlap:g}) " if refine else f"from {shown[0]} to {shown[-1] if not coordinate.periodic else 'around the circle'}, spring {spring_text} (the protocol's{' softest' if len(set(axis.springs)) > 1 else ''}), ")
+               f"{targets.overlap * MARGIN:g}, {MARGIN:g} x the target) " if refine else f"from {shown[0]} to {shown[-1] if not coordinate.periodic else 'around the circle'}, spring {spring_text} (the protocol's{' softest' if len(set(axis.springs)) > 1 else ''}), ")
             + f"for neighbour MBAR overlap of at least {targets.overlap:g} (planned for {targets.overlap * MARGIN:g}, each window weighted by its expected independent samples)")
     lines = [head] + [f"  {a} - {b_}: predicted overlap {p:.3f}" for a, b_, p in pairs]
     if refine:
-        lines += [f"  measured in the run: {a} - {b_}: {p:.3f}" for a, b_, p in measured if not p >= targets.overlap]
+        lines += [f"  measured in the run: {a} - {b_}: {p:.3f}" for a, b_, p in measured
+                  if not p >= targets.overlap * MARGIN]
     new = replace(protocol, umbrella=(UmbrellaAxis(axis.coordinate, design.centres, design.springs),))
     return new, pairs, measured, lines
 

@@ -285,3 +285,169 @@ def test_propose_writes_a_protocol_that_checks_and_says_where_it_came_from(umbre
     assert again.returncode == 0, again.stderr
     body = lambda t: t.split("\n", 2)[2]   # noqa: E731  (the header names the source)
     assert body((tmp_path / "plans" / "again.yaml").read_text()) == body(text)
+
+
+# -- runs of planned protocols (slow) ------------------------------------------------------
+
+def _plan(protocol_path, folder, *, trial_ps=None, source=None, refine=False, targets=None, name="planned.yaml"):
+    from boost.proposal import Targets, propose, read_source, run_trial, write_proposal
+    from boost.protocol import load_protocol
+
+    protocol = load_protocol(protocol_path)
+    if source is None:
+        source = run_trial(protocol, trial_ps, folder / "trial")
+    else:
+        source = read_source(source)
+    proposal = propose(protocol, source, targets or Targets(), folder / name, refine=refine)
+    write_proposal(proposal, folder / name)
+    return load_protocol(folder / name), proposal
+
+
+def _run_and_analyse(protocol, folder):
+    from boost.analysis import analyse_run
+    from boost.scheduler import run_protocol
+
+    run_protocol(protocol, folder, progress=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return analyse_run(folder)
+
+
+def _measured_neighbour_overlaps(analysis, periodic):
+    """min(O_ij, O_ji) of neighbours along the (sorted) windows, the wrap included on a circle."""
+    from boost.diagnostics import neighbour_overlaps
+
+    overlap = analysis.overlap
+    values = [value for _, _, value in neighbour_overlaps(overlap, (len(overlap),))]
+    return values + [min(overlap[0, -1], overlap[-1, 0])] if periodic else values
+
+
+# 22 particles (d = 66) in one harmonic well; the trial ladder spans 300-900 K.
+HARMONIC_LADDER = """\
+protocol: 1
+title: harmonic well, trial ladder
+system:
+  model: {name: harmonic_well, particles: 22, spring: 1000 kJ/mol/nm**2, mass: 12 amu}
+seed: 2031
+temperature: 300 K
+timestep: 5 fs
+friction: 10/ps
+platform: {name: Reference, workers: 1}
+temperatures: [300 K, 450 K, 650 K, 900 K]
+exchange: {pairs: adjacent, attempts: 2}
+run:
+  cycle: 0.5 ps
+  equilibration: 5 ps
+  production: 400 ps
+"""
+
+
+@pytest.mark.slow
+def test_planned_ladder_measures_the_predicted_acceptance(tmp_path):
+    # tests/REFERENCES.md, "Swap acceptance between harmonic systems": the ladder planned from a
+    # 50 ps trial predicts, per pair, the exact acceptance within 0.05, and a run of it
+    # measures the exact acceptance within 0.05 (and within 3 of its standard errors + 0.02)
+    from boost.store import read_ledger
+    from test_tempering import measured_acceptance
+
+    path = tmp_path / "ladder.yaml"
+    path.write_text(HARMONIC_LADDER)
+    planned, proposal = _plan(path, tmp_path, trial_ps=50.0)
+    temperatures = planned.temperatures
+    assert temperatures[0] == 300.0 and temperatures[-1] == 900.0 and len(temperatures) >= 5
+    predicted = [p for _, _, p in proposal.pairs]
+    exact = [exact_acceptance(66, b / a) for a, b in zip(temperatures, temperatures[1:])]
+    print("planned ladder", temperatures, "predicted", np.round(predicted, 3), "exact", np.round(exact, 3))
+    assert min(predicted) >= 0.3
+    assert np.allclose(predicted, exact, atol=0.05)
+    _run_and_analyse(planned, tmp_path / "run")
+    data = read_ledger(tmp_path / "run", reduced=False)
+    for i, value in enumerate(exact):
+        mean, error = measured_acceptance(data, i, i + 1)
+        print(f"pair {i}: measured {mean:.3f} ± {error:.3f}, exact {value:.3f}, predicted {predicted[i]:.3f}")
+        assert abs(mean - value) < 0.05 and abs(mean - value) < 3 * error + 0.02
+
+
+def _with_production(protocol, ps):
+    """``protocol`` with a production of ``ps`` (dumped and read back, so text and hash agree)."""
+    from dataclasses import replace
+
+    from boost.protocol import parse_protocol
+    from boost.protocol_dump import dump_protocol
+
+    cycles = round(ps / (protocol.run.steps_per_cycle * protocol.timestep))
+    return parse_protocol(dump_protocol(replace(protocol, run=replace(protocol.run, production_cycles=cycles))),
+                          protocol.path)
+
+
+def _coarse_double_well(folder):
+    """The shipped double-well umbrella example with 7 windows instead of 21, 20 ps each."""
+    text = (REPO / "protocols" / "double-well-umbrella.yaml").read_text()
+    text = text.replace("count: 21", "count: 7").replace("production: 100 ps", "production: 20 ps")
+    path = folder / "coarse.yaml"
+    path.write_text(text.replace("seed: 3", "seed: 3\nplatform: {name: Reference, workers: 1}"))
+    return path
+
+
+@pytest.mark.slow
+def test_planned_double_well_windows_overlap_as_targeted(tmp_path):
+    # The target itself, measured with pymbar's overlap matrix (boost analyze's): every
+    # neighbour pair of a 200 ps run of the protocol planned from a 20 ps trial of 7 coarse
+    # windows overlaps by at least 0.05, where the trial's own neighbours did not.
+    coarse = _coarse_double_well(tmp_path)
+    planned, proposal = _plan(coarse, tmp_path, trial_ps=20.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        from boost.analysis import analyse_run
+        trial = _measured_neighbour_overlaps(analyse_run(tmp_path / "trial"), False)
+    assert min(trial) < 0.05
+    analysis = _run_and_analyse(_with_production(planned, 200.0), tmp_path / "run")
+    measured = _measured_neighbour_overlaps(analysis, False)
+    print("trial", np.round(trial, 3), "planned", len(planned.umbrella[0].centres), "windows, predicted",
+          np.round([p for _, _, p in proposal.pairs], 3), "measured", np.round(measured, 3))
+    assert min(measured) >= 0.05
+
+
+@pytest.mark.slow
+def test_refined_double_well_windows_add_only_between_poor_pairs(tmp_path):
+    # --refine on a finished run of the coarse protocol keeps its 7 windows, adds windows only
+    # inside pairs whose measured overlap was below 0.05 x MARGIN, and a run of the refined protocol
+    # measures at least 0.05 between all neighbours (pymbar's overlap matrix, as above)
+    from boost.analysis import analyse_run
+    from boost.protocol import load_protocol
+    from boost.scheduler import run_protocol
+
+    coarse = _coarse_double_well(tmp_path)
+    original = load_protocol(coarse)
+    run_protocol(original, tmp_path / "finished", progress=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        before = _measured_neighbour_overlaps(analyse_run(tmp_path / "finished"), False)
+    refined, _ = _plan(coarse, tmp_path, source=tmp_path / "finished", refine=True, name="refined.yaml")
+    old, new = original.umbrella[0].centres, refined.umbrella[0].centres
+    assert set(old) <= set(new) and len(new) > len(old)
+    poor = [(old[i], old[i + 1]) for i, value in enumerate(before) if value < 0.05 * MARGIN]
+    for c in set(new) - set(old):
+        assert any(a < c < b for a, b in poor)
+    analysis = _run_and_analyse(_with_production(refined, 200.0), tmp_path / "run")
+    measured = _measured_neighbour_overlaps(analysis, False)
+    print("before", np.round(before, 3), "refined", len(new), "windows, measured", np.round(measured, 3))
+    assert min(measured) >= 0.05
+
+
+@pytest.mark.slow
+def test_planned_alanine_windows_overlap_as_targeted(tmp_path):
+    # The shipped alanine demo (36 windows along phi) as a 20 ps trial; the planned windows,
+    # run 300 ps each, overlap by at least 0.05 between every pair of neighbours, the wrap at
+    # ±180 deg included (pymbar's overlap matrix through boost analyze).
+    text = (REPO / "protocols" / "alanine-phi-umbrella.yaml").read_text()
+    text = text.replace("seed: 2026", "seed: 11\nplatform: {name: Reference, workers: 1}")
+    path = tmp_path / "alanine.yaml"
+    path.write_text(text.replace("  frame_every: 5 ps\n", ""))
+    planned, proposal = _plan(path, tmp_path, trial_ps=20.0)
+    analysis = _run_and_analyse(_with_production(planned, 300.0), tmp_path / "run")
+    measured = _measured_neighbour_overlaps(analysis, True)
+    print("planned", len(planned.umbrella[0].centres), "windows, predicted",
+          np.round([p for _, _, p in proposal.pairs], 3), "measured", np.round(measured, 3))
+    assert len(planned.umbrella[0].centres) < 36
+    assert min(measured) >= 0.05

@@ -284,7 +284,7 @@ def propose(protocol, source, targets, output, *, refine=False):
         analysis = _quiet_analysis(source.folder)
         new, pairs, measured, lines = _plan_windows(protocol, source, analysis, targets, refine)
     run, production_lines = _production(protocol, run_protocol, data, analysis, targets,
-                                        _falls_short(run_protocol, analysis, what, targets))
+                                        _weakest_pair(run_protocol, analysis, what, targets))
     new = replace(new, run=run)
     lines += production_lines + _wall_time(new, source)
     header = _header(source, what, targets, refine, pairs)
@@ -293,18 +293,19 @@ def propose(protocol, source, targets, output, *, refine=False):
     return Proposal(planned, text, tuple(pairs), tuple(measured), tuple(lines))
 
 
-def _falls_short(run_protocol, analysis, what, targets):
-    """Whether any neighbour pair of the source run measured below the target."""
+def _weakest_pair(run_protocol, analysis, what, targets):
+    """The source run's lowest measured neighbour acceptance or overlap, over the target."""
     from .diagnostics import neighbour_overlaps
 
     if what == "ladder":
+        if analysis.swaps is None:
+            return math.inf
         n = len(run_protocol.temperatures)
-        return analysis.swaps is not None and \
-            any(not analysis.swaps.acceptance_ij[i, i + 1] >= targets.acceptance for i in range(n - 1))
-    shape = (1, len(run_protocol.umbrella[0].centres))
+        return min(analysis.swaps.acceptance_ij[i, i + 1] for i in range(n - 1)) / targets.acceptance
+    shape = (len(run_protocol.umbrella[0].centres),)
     order = np.argsort(run_protocol.umbrella[0].centres, kind="stable")
     overlap = analysis.overlap[np.ix_(order, order)]
-    return any(value < targets.overlap for _, _, value in neighbour_overlaps(overlap, shape))
+    return min(value for _, _, value in neighbour_overlaps(overlap, shape)) / targets.overlap
 
 
 def _conditions(protocol):
@@ -468,11 +469,18 @@ def _show(value, coordinate):
     return f"{math.degrees(value):.1f} deg" if coordinate.periodic or coordinate.unit == "rad" else f"{value:.4f} nm"
 
 
-def _production(protocol, run_protocol, data, analysis, targets, poor):
+#: Below this fraction of the target, a run's weakest neighbour pair dominates its error on
+#: ΔG, which then says nothing about a run of the planned protocol.
+DISCONNECTED = 0.5
+
+
+def _production(protocol, run_protocol, data, analysis, targets, weakest):
     """The run settings of the proposal and the report lines on its production.
 
-    ``poor``: the source's neighbours fell short of the target, so its ΔG error measures
-    that shortfall rather than sampling, and says nothing about the proposed run.
+    ``weakest``: the source's lowest neighbour acceptance or overlap over the target. Below
+    DISCONNECTED its error on ΔG measures that gap rather than sampling, and no production
+    is planned from it; between that and 1 the estimate errs long (the planned neighbours
+    overlap more than the run's did).
     """
     cycle_ps = protocol.run.steps_per_cycle * protocol.timestep
     run_cycle_ps = run_protocol.run.steps_per_cycle * run_protocol.timestep
@@ -493,20 +501,22 @@ def _production(protocol, run_protocol, data, analysis, targets, poor):
     shown = lambda kt: f"{energy_in(kt, unit, protocol.temperature):.3g} {unit}"   # noqa: E731
     lines.append(f"ΔG({name_a} -> {name_b}) in the run: {shown(float(basins.Delta_g[0, 1]))} ± {shown(error)} "
                  f"after {source_ps:g} ps per condition ({analysis.uncertainty.label})")
-    if poor:
-        lines.append("production kept: the run's neighbours fall short of the target, so its error on ΔG says "
-                     "little about the planned protocol; run that, then plan the production from it "
-                     "(boost propose NEW --from ITS_RUN --error ...)")
+    if weakest < DISCONNECTED:
+        lines.append(f"production kept: a neighbour pair of the run reaches only {weakest:.2f} of the target, so "
+                     "its error on ΔG says little about the planned protocol; run that, then plan the production "
+                     "from it (boost propose NEW --from ITS_RUN --error ...)")
         return run, lines
+    caveat = "; errs long: a neighbour pair of the run fell short of the target" if weakest < 1 else ""
     if targets.error_kt is None:
         planned_ps = run.production_cycles * cycle_ps
-        lines.append(f"production kept at {planned_ps:g} ps: predicted error ± {shown(error * math.sqrt(source_ps / planned_ps))}"
-                     " (errors shrink as 1/sqrt(production); --error sets a target)")
+        lines.append(f"production kept at {planned_ps:g} ps: predicted error ± "
+                     f"{shown(error * math.sqrt(source_ps / planned_ps))} (errors shrink as 1/sqrt(production), "
+                     f"--error sets a target{caveat})")
         return run, lines
     needed_ps = max(source_ps * (error / targets.error_kt) ** 2, floor_ps)
     cycles = max(1, math.ceil(needed_ps / cycle_ps - 1e-9))
     lines.append(f"production set to {cycles * cycle_ps:g} ps per condition for ± {shown(targets.error_kt)} on ΔG "
-                 "(errors shrink as 1/sqrt(production), each new condition assumed to sample as the run's did)")
+                 f"(errors shrink as 1/sqrt(production), each new condition assumed to sample as the run's did{caveat})")
     return replace(run, production_cycles=cycles), lines
 
 

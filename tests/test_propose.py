@@ -451,3 +451,20 @@ def test_planned_alanine_windows_overlap_as_targeted(tmp_path):
           np.round([p for _, _, p in proposal.pairs], 3), "measured", np.round(measured, 3))
     assert len(planned.umbrella[0].centres) < 36
     assert min(measured) >= 0.05
+
+
+def test_relative_system_path_still_names_the_file_from_another_folder(tmp_path):
+    # the planned protocol goes to another folder than the original: its system path is
+    # rewritten so that it names the same file from there
+    (tmp_path / "systems").mkdir()
+    (tmp_path / "study").mkdir()
+    (tmp_path / "systems" / "well.yaml").write_text(
+        "model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}\n")
+    text = UMBRELLA.replace("system:\n  model: {name: double_well, barrier: 5 kJ/mol, minimum: 0.1 nm, tilt: 1 kJ/mol}",
+                            "system: ../systems/well.yaml")
+    assert "../systems/well.yaml" in text
+    (tmp_path / "study" / "protocol.yaml").write_text(text)
+    result = boost("propose", "study/protocol.yaml", "-o", "new.yaml", "--trial", "2 ps", "--quiet", cwd=tmp_path)
+    assert result.returncode == 0, result.stderr
+    assert "\nsystem: systems/well.yaml\n" in (tmp_path / "new.yaml").read_text()
+    assert boost("check", "new.yaml", cwd=tmp_path).returncode == 0

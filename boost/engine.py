@@ -112,7 +112,7 @@ def choose_platform(settings, system, positions, *, timestep, n_walkers=1, cores
     for name, threads in candidates:
         properties = platform_properties(name, settings, threads)
         with pinned(cores[:threads]):
-            rate = measure_speed(system, positions, name, properties, timestep, seconds)
+            rate = _measure_speed(system, positions, name, properties, timestep, seconds)
         label = name if name == "Reference" else f"CPU {threads} thread{'s' if threads > 1 else ''}"
         probe.append((label, rate, at_once(threads)))
         if best is None or rate * at_once(threads) > best[0]:
@@ -120,8 +120,7 @@ def choose_platform(settings, system, positions, *, timestep, n_walkers=1, cores
     return PlatformChoice(best[1], best[2], tuple(probe))
 
 
-def measure_speed(system, positions, name, properties, timestep, seconds):
-    """Steps per second of one context of ``system`` on platform ``name`` over about ``seconds``."""
+def _measure_speed(system, positions, name, properties, timestep, seconds):
     integrator = openmm.LangevinMiddleIntegrator(300 * unit.kelvin, 1 / unit.picosecond,
                                                  timestep * unit.picosecond)
     integrator.setRandomNumberSeed(1)

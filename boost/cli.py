@@ -1,6 +1,7 @@
 """The ``boost`` command: thin wiring from the command line to the pipeline."""
 
 import logging
+import os
 import sys
 from dataclasses import replace
 from pathlib import Path
@@ -31,6 +32,12 @@ class _Group(click.Group):
             sys.exit(130)
         except (click.exceptions.Exit, click.ClickException, click.Abort):
             raise
+        except BrokenPipeError:
+            # the reader of our output went away (`boost ... | head`): stop quietly, as the
+            # Python documentation advises for SIGPIPE, so the interpreter's final flush
+            # does not fail again
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+            sys.exit(1)
         except Exception as err:  # a bug in boost or a library: still one line unless --debug
             if debug:
                 raise

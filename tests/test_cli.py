@@ -118,3 +118,16 @@ def test_systems_lists_bundled(tmp_path):
     # the last line points at the example protocols (here the source tree's protocols/)
     examples = Path(result.stdout.splitlines()[-1].removeprefix("example protocols: "))
     assert (examples / "alanine-phi-umbrella.yaml").is_file(), result.stdout
+
+
+def test_closed_output_pipe_is_a_quiet_stop(tmp_path):
+    """`boost systems | head -1`: the reader closes the pipe; boost stops without an error line."""
+    read_end, write_end = os.pipe()
+    os.close(read_end)
+    try:
+        result = subprocess.run([*BOOST, "systems"], cwd=tmp_path, stdout=write_end,
+                                stderr=subprocess.PIPE, text=True, timeout=300)
+    finally:
+        os.close(write_end)
+    assert result.returncode == 1
+    assert result.stderr == ""

@@ -71,28 +71,48 @@ def count_round_trips(trace, lowest, highest):
     return trips
 
 
-def neighbour_pairs_on_grid(ladder_shape):
-    """(i, j) for every pair of neighbouring conditions on the ladder grid, i < j."""
+def closes_circle(centres):
+    """True when windows on a periodic axis, in ladder order, go all the way around.
+
+    They do when the centres increase and the gap from the last back to the first across
+    ±180° is no wider than the widest gap between neighbours; then that pair meets too.
+    """
+    centres = np.asarray(centres, dtype=float)
+    steps = np.diff(centres)
+    if centres.size < 3 or not np.all(steps > 0):
+        return False
+    return 2 * np.pi - (centres[-1] - centres[0]) <= steps.max() * (1 + 1e-9)
+
+
+def neighbour_pairs_on_grid(ladder_shape, circles=()):
+    """(i, j) for every pair of neighbouring conditions on the ladder grid, i < j.
+
+    ``circles``: axes whose last and first conditions are neighbours too (see closes_circle).
+    """
     index = np.arange(int(np.prod(ladder_shape))).reshape(ladder_shape)
     pairs = []
     for axis in range(len(ladder_shape)):
         moved = np.moveaxis(index, axis, 0)
-        for step in range(ladder_shape[axis] - 1):
-            pairs += [(int(i), int(j)) for i, j in zip(moved[step].ravel(), moved[step + 1].ravel())]
+        steps = [(step, step + 1) for step in range(ladder_shape[axis] - 1)]
+        steps += [(ladder_shape[axis] - 1, 0)] if axis in circles else []
+        for a, b in steps:
+            pairs += [(min(int(i), int(j)), max(int(i), int(j))) for i, j in zip(moved[a].ravel(), moved[b].ravel())]
     return pairs
 
 
-def neighbour_overlaps(overlap, ladder_shape):
+def neighbour_overlaps(overlap, ladder_shape, circles=()):
     """(i, j, overlap) for every pair of neighbouring conditions on the ladder grid."""
-    return [(i, j, float(min(overlap[i, j], overlap[j, i]))) for i, j in neighbour_pairs_on_grid(ladder_shape)]
+    return [(i, j, float(min(overlap[i, j], overlap[j, i])))
+            for i, j in neighbour_pairs_on_grid(ladder_shape, circles)]
 
 
-def warn_poor_overlap(overlap, ladder_shape, describe):
+def warn_poor_overlap(overlap, ladder_shape, describe, circles=()):
     """Warn (our own category) naming each pair of neighbouring conditions that overlap poorly.
 
     describe : callable, condition index -> short text such as 'window 3 (phi = 45 deg)'
+    circles : axes of ladder_shape whose windows go around a circle (see closes_circle)
     """
-    poor = [(i, j, o) for i, j, o in neighbour_overlaps(overlap, ladder_shape) if o < POOR_OVERLAP]
+    poor = [(i, j, o) for i, j, o in neighbour_overlaps(overlap, ladder_shape, circles) if o < POOR_OVERLAP]
     for i, j, o in poor:
         message = (f"{describe(i)} and {describe(j)} overlap poorly (MBAR overlap {o:.3f} < {POOR_OVERLAP}); "
                    "add windows between them or soften the springs.")

@@ -195,7 +195,7 @@ def all_basins_visited_at(folder):
     protocol, data = load_run(folder)
     values = data.values_rtc[:, data.production_t]
     n_walkers, n_cycles, n_coordinates = values.shape
-    masks = basin_masks(protocol, list(data.coordinate_names), data.metadata["periodic"],
+    masks = basin_masks(protocol, list(data.coordinate_names), data.periodic,
                         values.reshape(-1, n_coordinates))
     firsts = []
     for mask in masks.values():

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .units import MOLAR_GAS_CONSTANT
+from .units import beta, thermal_energy
 
 # OpenMM and SciPy are imported where a model is built or integrated: reading a model
 # spec (when a protocol is loaded) needs neither.
@@ -249,7 +249,7 @@ class DoubleWell(_ExactPopulations):
 
     def compute_domain(self, temperature):
         """((lo, hi),): the x interval in nm outside which exp(-[U - U_min]/kT) < exp(-40)."""
-        kt = MOLAR_GAS_CONSTANT * temperature
+        kt = thermal_energy(temperature)
         lowest = self._energy_x(self.compute_minima()).min()
         ends = []
         for sign in (-1.0, 1.0):
@@ -260,9 +260,9 @@ class DoubleWell(_ExactPopulations):
         return ((ends[0], ends[1]),)
 
     def _weight(self, temperature):
-        beta = 1.0 / (MOLAR_GAS_CONSTANT * temperature)
+        beta_ = beta(temperature)
         lowest = self._energy_x(self.compute_minima()).min()
-        return lambda x: math.exp(-beta * (self._energy_x(x) - lowest))
+        return lambda x: math.exp(-beta_ * (self._energy_x(x) - lowest))
 
     def _break_points(self, domain):
         return [[*self.compute_minima(), *_panels(*domain[0], self.minimum / 4)]]
@@ -394,7 +394,7 @@ class MullerBrown(_ExactPopulations):
         Starts from x in [-1.5, 1.2], y in [-0.5, 2.0] surface units and moves each edge
         outward by 0.25 units until the energy on that whole edge clears the cutoff.
         """
-        beta_scaled = self.energy_scale / (MOLAR_GAS_CONSTANT * temperature)
+        beta_scaled = self.energy_scale * beta(temperature)
         lowest = self.find_deepest_minimum().energy / self.energy_scale
         box = [list(_MB_BOX[0]), list(_MB_BOX[1])]
         for _ in range(400):
@@ -412,7 +412,7 @@ class MullerBrown(_ExactPopulations):
 
     def _weight(self, temperature):
         """exp(-[U - U_min]/kT) as a scalar function of (x, y) in nm."""
-        beta_scaled = self.energy_scale / (MOLAR_GAS_CONSTANT * temperature)
+        beta_scaled = self.energy_scale * beta(temperature)
         lowest, scale = self.find_deepest_minimum().energy / self.energy_scale, self.length_scale
         return lambda x, y: math.exp(
             -beta_scaled * (_mb_surface(x / scale, y / scale, math.exp) - lowest))
@@ -447,7 +447,7 @@ class MullerBrown(_ExactPopulations):
             at = (lambda t, g=value: weight(g, t)) if along == 0 else (lambda t, g=value: weight(t, g))
             densities.append(_quad(at, *domain, points))
         with np.errstate(divide="ignore"):
-            pmf = -MOLAR_GAS_CONSTANT * temperature * np.log(np.array(densities))
+            pmf = -thermal_energy(temperature) * np.log(np.array(densities))
         return pmf - pmf.min()
 
 
@@ -492,9 +492,9 @@ class HarmonicWell:
 
     def compute_exact_free_energy(self, temperature):
         """Reduced configurational free energy f = -ln ∫ exp(-U/kT) d^d x (x in nm), in kT."""
-        kt = MOLAR_GAS_CONSTANT * temperature
+        kt = thermal_energy(temperature)
         return -0.5 * self.degrees_of_freedom * math.log(2.0 * math.pi * kt / self.spring)
 
     def compute_exact_mean_energy(self, temperature):
         """⟨U⟩ = (d/2) kT, in kJ/mol, at ``temperature`` (K)."""
-        return 0.5 * self.degrees_of_freedom * MOLAR_GAS_CONSTANT * temperature
+        return 0.5 * self.degrees_of_freedom * thermal_energy(temperature)

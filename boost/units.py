@@ -181,9 +181,14 @@ def _written_forms(value, dimension):
     return [(value, _WRITTEN_UNITS[dimension])]
 
 
+def thermal_energy(temperature):
+    """kT in kJ/mol for a temperature in K."""
+    return MOLAR_GAS_CONSTANT * temperature
+
+
 def beta(temperature):
     """Inverse thermal energy 1/kT in mol/kJ for a temperature in K."""
-    return 1.0 / (MOLAR_GAS_CONSTANT * temperature)
+    return 1.0 / thermal_energy(temperature)
 
 
 def reduced(energy, temperature):

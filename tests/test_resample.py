@@ -184,7 +184,7 @@ def test_exchange_run_reports_a_block_bootstrap(ladder, tmp_path):
 def test_bootstrap_blocks_are_shared_by_every_condition(ladder, monkeypatch):
     protocol = load_protocol(ladder / "protocol.yaml")
     data = read_ledger(ladder, reduced=False)
-    picks = select_samples(data, protocol, ladder, protocol.analysis.memory)["picks"]
+    picks = select_samples(data, protocol, ladder, protocol.analysis.memory).picks
     cycle_n = np.concatenate([c for _, c in picks])
     condition_n = np.repeat(np.arange(len(picks)), [len(c) for _, c in picks])
     seen = []

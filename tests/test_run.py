@@ -36,6 +36,35 @@ def test_ledger_holds_every_cycle_with_units(small_run):
     assert np.all(np.isfinite(data.potential_rt))
     # reduced potential of the unbiased condition is βU (β at 300 K; R = 8.314462618e-3 kJ/mol/K, CODATA)
     assert data.u_krt[0, 0] == pytest.approx(data.potential_rt[0] / (8.314462618e-3 * 300))
+    # what each coordinate is, as typed fields: x is a position in nm, nothing wraps, no umbrella
+    assert data.coordinate_names == ("x",)
+    assert data.periodic == (False,) and data.angle_coordinates == frozenset()
+    assert data.umbrella_coordinates == ()
+
+
+ALANINE_TWO_COORDINATES = """\
+protocol: 1
+system: alanine-vacuum
+seed: 1
+temperature: 300 K
+timestep: 2 fs
+platform: Reference
+coordinates:
+  end_to_end: {distance: ["resid 0 and name C", "resid 2 and name N"]}
+  phi: {dihedral: ["resid 0 and name C", "resid 1 and name N", "resid 1 and name CA", "resid 1 and name C"]}
+umbrella:
+  phi: {centres: [-60 deg], spring: 100 kJ/mol/rad**2}
+run: {cycle: 0.1 ps, production: 0.3 ps}
+"""
+
+
+def test_ledger_says_which_coordinates_are_angles(tmp_path, write_protocol):
+    folder = run_protocol(load_protocol(write_protocol(ALANINE_TWO_COORDINATES)), tmp_path / "run", progress=False)
+    data = read_ledger(folder)
+    assert data.coordinate_names == ("end_to_end", "phi")
+    assert data.periodic == (False, True)
+    assert data.angle_coordinates == frozenset({"phi"})
+    assert data.umbrella_coordinates == ("phi",)
 
 
 def test_frames_open_with_mdtraj_and_match_the_ledger(small_run):

@@ -5,7 +5,7 @@ import math
 import pytest
 
 from boost.exceptions import ProtocolError
-from boost.units import MOLAR_GAS_CONSTANT, beta, energy_in, parse_quantity
+from boost.units import MOLAR_GAS_CONSTANT, beta, energy_in, parse_quantity, thermal_energy
 
 PLACE = "p.yaml: key"
 
@@ -51,3 +51,4 @@ def test_kt_at_300_kelvin():
     assert energy_in(1.0, "kcal/mol", 300) == pytest.approx(2.4943 / 4.184, abs=1e-4)
     assert energy_in(2.0, "kT", 300) == 2.0
     assert beta(300) * 2.4943387854 == pytest.approx(1.0)
+    assert thermal_energy(300) == pytest.approx(2.4943387854, rel=1e-10)

@@ -23,10 +23,11 @@ from .estimates import compute_basin_results, compute_profiles, population_inter
 from .inputs import load_run
 from .results import Analysis, BasinResult, ProfileResult, Uncertainty
 from .verdicts import Verdicts, compute_verdicts
-from .samples import (MBAR_COPIES, MBAR_SHARE, MIN_SAMPLES, basin_masks, compute_sample_reduced_potentials,
-                      condition_labels, gather, select_samples, thinning_stride, window_values)
+from .samples import (MBAR_COPIES, MBAR_SHARE, MIN_SAMPLES, Samples, basin_masks,
+                      compute_sample_reduced_potentials, condition_labels, gather, select_samples,
+                      thinning_stride, window_values)
 
-__all__ = ["Analysis", "BasinResult", "ProfileResult", "Uncertainty", "Verdicts", "analyse_run", "basin_masks",
+__all__ = ["Analysis", "BasinResult", "ProfileResult", "Samples", "Uncertainty", "Verdicts", "analyse_run", "basin_masks",
            "compute_sample_reduced_potentials", "condition_labels", "load_run", "population_interval",
            "select_samples", "thinning_stride", "MBAR_COPIES", "MBAR_SHARE", "MIN_SAMPLES"]
 
@@ -48,7 +49,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
                             f"({min(ladder):g} K to {max(ladder):g} K); MBAR cannot extrapolate.")
     unit = energy_unit or protocol.analysis.energy_unit
     samples = select_samples(data, protocol, folder, protocol.analysis.memory if memory is None else memory)
-    u_kn, N_k, picks = samples["u_kn"], samples["N_k"], samples["picks"]
+    u_kn, N_k, picks = samples.u_kn, samples.N_k, samples.picks
     mbar = Reweighting(u_kn, N_k)
     u_n = compute_unbiased_reduced_potential(
         temperature, gather(data.potential_rt, picks),
@@ -72,7 +73,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
                                 scale)
     return Analysis(
         folder=str(folder), temperature=temperature, energy_unit=unit, n_cycles=len(data.cycle_t),
-        samples_k=N_k, thinning_k=samples["thinning_k"], t0_k=samples["t0_k"], g_k=samples["g_k"],
+        samples_k=N_k, thinning_k=samples.thinning_k, t0_k=samples.t0_k, g_k=samples.g_k,
         f_k=mbar.f_k, df_k=df_k, overlap=mbar.overlap,
         poor_pairs=tuple(poor),
         profiles=tuple(p for p, _ in profiles),
@@ -83,7 +84,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
                               production) if protocol.exchange else None,
         condition_labels=labels, window_values=window_values(data, protocol),
         umbrella_coordinates=tuple(a.coordinate for a in protocol.umbrella),
-        angle_coordinates=frozenset(n for n, u in data.metadata["units"].items() if u == "rad"),
+        angle_coordinates=data.angle_coordinates,
         walker_traces=data.condition_rt[:, data.production_t])
 
 

@@ -25,7 +25,7 @@ def compute_bootstrap_errors(mbar, u_n, samples, data, protocol, folder, profile
     """Replace the asymptotic errors by a block bootstrap over cycles (see boost.resample)."""
     settings = protocol.analysis.uncertainty
     production = np.flatnonzero(data.production_t)
-    start = int(min(samples["t0_k"]))          # no condition keeps a sample before this
+    start = int(min(samples.t0_k))          # no condition keeps a sample before this
     cycles = production[start:]
     if settings.method == "auto" and cycles.size < resample.MIN_BLOCKS:
         warnings.warn(f"only {cycles.size} production cycles to resample, fewer than the {resample.MIN_BLOCKS} a "
@@ -36,7 +36,7 @@ def compute_bootstrap_errors(mbar, u_n, samples, data, protocol, folder, profile
         resample.check_cycles(cycles.size)
     except AnalysisError as err:
         raise AnalysisError(f"{folder}: {err}") from None
-    walker_g = max(_walker_inefficiency(data, protocol, cycles), float(max(samples["g_k"])))
+    walker_g = max(_walker_inefficiency(data, protocol, cycles), float(max(samples.g_k)))
     block, shortened = settings.block_cycles, False
     if block and cycles.size // block < resample.MIN_BLOCKS:
         raise AnalysisError(f"{folder}: analysis.uncertainty.block ({block} cycles) leaves fewer than "
@@ -51,7 +51,7 @@ def compute_bootstrap_errors(mbar, u_n, samples, data, protocol, folder, profile
                           "that are too small. Run longer.", ConvergenceWarning, stacklevel=3)
     rng = np.random.default_rng([protocol.seed, _BOOTSTRAP_STREAM])
     count_bt = resample.draw_cycle_counts(cycles.size, block, settings.resamples, rng)
-    position_n = np.searchsorted(cycles, np.concatenate([c for _, c in samples["picks"]]))
+    position_n = np.searchsorted(cycles, np.concatenate([c for _, c in samples.picks]))
     masks = basins[1] if basins else None
     result = resample.run_replicates(
         lambda count_t: compute_statistics(mbar, u_n, count_t[position_n], masks, [b for _, b in profiles]), count_bt)
@@ -64,7 +64,7 @@ def compute_bootstrap_errors(mbar, u_n, samples, data, protocol, folder, profile
     uncertainty = Uncertainty("bootstrap", settings.resamples, block, not settings.block_cycles,
                               result.n_failed, walker_g, protocol.run.steps_per_cycle * protocol.timestep,
                               shortened)
-    return (*_with_bootstrap(result, len(samples["N_k"]), profiles, basins, scale), uncertainty)
+    return (*_with_bootstrap(result, len(samples.N_k), profiles, basins, scale), uncertainty)
 
 
 def _walker_inefficiency(data, protocol, cycles):
@@ -79,7 +79,7 @@ def _walker_inefficiency(data, protocol, cycles):
     """
     watched = ({a.coordinate for a in protocol.umbrella} | {c for b in protocol.basins.values() for c in b}
                | {b.coordinate for b in protocol.analysis.bins})
-    names, periodic = list(data.coordinate_names), data.metadata["periodic"]
+    names, periodic = list(data.coordinate_names), data.periodic
     n_walkers = data.condition_rt.shape[0]
     times = np.arange(cycles.size)
     k_rt = data.condition_rt[:, cycles]

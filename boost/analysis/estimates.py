@@ -22,7 +22,7 @@ def bin_edges(protocol, data, name, values):
         if bins.coordinate == name:
             return np.array(bins.edges)
     c = data.coordinate_names.index(name)
-    if data.metadata["periodic"][c]:
+    if data.periodic[c]:
         return np.linspace(-math.pi, math.pi, DEFAULT_BIN_COUNT["periodic"] + 1)
     low, high = float(np.min(values)), float(np.max(values))
     return np.linspace(low, high + 1e-9 * max(1.0, abs(high)), DEFAULT_BIN_COUNT["open"] + 1)
@@ -42,7 +42,7 @@ def compute_profiles(mbar, u_n, values_nc, data, protocol, scale):
         edges = [bin_edges(protocol, data, name, values[:, i]) for i, name in enumerate(grid)]
         profile = mbar.compute_pmf(u_n, values, edges)
         _warn_sparse_bins(grid, profile.counts)
-        centres = tuple(np.degrees(c) if data.metadata["units"][name] == "rad" else c
+        centres = tuple(np.degrees(c) if name in data.angle_coordinates else c
                         for c, name in zip(profile.centres, grid))
         f, df = profile.f * scale, profile.df * scale
         bin_n, _, _ = bin_samples(values, edges, len(u_n))
@@ -66,7 +66,7 @@ def _warn_sparse_bins(grid, counts):
 def compute_basin_results(mbar, u_n, values_nc, data, protocol, scale):
     if not protocol.basins:
         return None
-    masks = basin_masks(protocol, list(data.coordinate_names), data.metadata["periodic"], values_nc)
+    masks = basin_masks(protocol, list(data.coordinate_names), data.periodic, values_nc)
     names = list(masks)
     for i, a in enumerate(names):
         for b in names[i + 1:]:

@@ -3,6 +3,7 @@ subsampled by statistical inefficiency, thinned to fit analysis.memory."""
 
 import math
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -10,6 +11,28 @@ from ..conditions import compute_reduced_potentials
 from ..correlation import compute_statistical_inefficiency
 from ..exceptions import AnalysisError, BoostWarning
 from ..reweight import decorrelate
+
+@dataclass(frozen=True, eq=False)
+class Samples:
+    """The samples MBAR uses, per condition of origin, and how they were picked.
+
+    Attributes
+    ----------
+    u_kn : ndarray, shape (n_conditions, n_samples), kT: every sample in every condition
+    N_k : ndarray of int, shape (n_conditions,): samples from each condition
+    picks : tuple (per condition) of (walker indices, cycle indices) of its samples
+    t0_k : ndarray of int: production cycles discarded as equilibration, per condition
+    g_k : ndarray: statistical inefficiency (cycles) used for the spacing, per condition
+    thinning_k : ndarray of int: further 1-in-n thinning to fit analysis.memory, per condition
+    """
+
+    u_kn: np.ndarray
+    N_k: np.ndarray
+    picks: tuple
+    t0_k: np.ndarray
+    g_k: np.ndarray
+    thinning_k: np.ndarray
+
 
 #: Fewest samples per condition (after subsampling) the analysis accepts.
 MIN_SAMPLES = 5
@@ -19,7 +42,7 @@ def window_values(data, protocol):
     columns = [data.coordinate_names.index(a.coordinate) for a in protocol.umbrella]
     if not columns:
         return ()
-    angular = [data.metadata["units"][a.coordinate] == "rad" for a in protocol.umbrella]
+    angular = [a.coordinate in data.angle_coordinates for a in protocol.umbrella]
     production = data.production_t
     out = []
     for k in range(len(data.conditions)):
@@ -34,8 +57,8 @@ def condition_labels(data, protocol):
     for condition in data.conditions:
         parts = [f"{condition.temperature:.1f} K"] if len(protocol.temperatures) > 1 else []
         for axis, centre in zip(protocol.umbrella, condition.centres):
-            unit = data.metadata["units"][axis.coordinate]
-            shown = f"{math.degrees(centre):.1f} deg" if unit == "rad" else f"{centre:.4g} nm"
+            shown = (f"{math.degrees(centre):.1f} deg" if axis.coordinate in data.angle_coordinates
+                     else f"{centre:.4g} nm")
             parts.append(f"{axis.coordinate} = {shown}")
         labels.append(f"condition {condition.index} ({', '.join(parts) or 'unbiased'})")
     return tuple(labels)
@@ -52,7 +75,7 @@ def _decorrelation_series(data, k, walkers, cycles, protocol):
     for c, name in enumerate(data.coordinate_names):
         if name in watched:
             values = data.values_rtc[walkers, cycles, c]
-            series += [np.cos(values), np.sin(values)] if data.metadata["periodic"][c] else [values]
+            series += [np.cos(values), np.sin(values)] if data.periodic[c] else [values]
     return series
 
 
@@ -62,9 +85,8 @@ def compute_sample_reduced_potentials(data, protocol, conditions, walkers, cycle
     The same formula the run used (boost.conditions), so it equals the ledger's stored
     reduced potentials; computing only the kept samples saves memory.
     """
-    umbrella = data.metadata["umbrella"]
-    columns = [data.coordinate_names.index(name) for name in umbrella]
-    periodic = [data.metadata["periodic"][c] for c in columns]
+    columns = [data.coordinate_names.index(name) for name in data.umbrella_coordinates]
+    periodic = [data.periodic[c] for c in columns]
     values = data.values_rtc[walkers, cycles][:, columns]
     return compute_reduced_potentials(conditions, data.potential_rt[walkers, cycles], values, periodic,
                                       volume_r=data.volume_rt[walkers, cycles], pressure=protocol.pressure)
@@ -85,7 +107,7 @@ def thinning_stride(n_samples, n_conditions, memory):
 
 
 def select_samples(data, protocol, folder, memory):
-    """Production samples per condition, equilibration removed, subsampled; u_kn and N_k."""
+    """Production samples per condition, equilibration removed, subsampled: a :class:`Samples`."""
     production = np.flatnonzero(data.production_t)
     if production.size == 0:
         raise AnalysisError(f"{folder}: holds no production cycle yet.")
@@ -117,8 +139,8 @@ def select_samples(data, protocol, folder, memory):
     cycles_n = np.concatenate([c for _, c in picks])
     u_kn = compute_sample_reduced_potentials(data, protocol, data.conditions, walkers_n, cycles_n)
     N_k = np.array([len(w) for w, _ in picks])
-    return {"u_kn": u_kn, "N_k": N_k, "picks": picks, "t0_k": np.array(t0_k), "g_k": np.array(g_k),
-            "thinning_k": np.array(strides)}
+    return Samples(u_kn=u_kn, N_k=N_k, picks=tuple(picks), t0_k=np.array(t0_k), g_k=np.array(g_k),
+                   thinning_k=np.array(strides))
 
 
 def basin_masks(protocol, coordinate_names, periodic, values_nc):

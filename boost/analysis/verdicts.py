@@ -55,16 +55,16 @@ def compute_verdicts(mbar, u_n, samples, data, protocol, profiles, basins, asymp
         before the bootstrap replaced the errors (the same objects when it did not).
     """
     production = np.flatnonzero(data.production_t)
-    picked_cycles = np.concatenate([c for _, c in samples["picks"]])
+    picked_cycles = np.concatenate([c for _, c in samples.picks])
     position_n = np.searchsorted(production, picked_cycles) / production.size
     mask_bn = basins[1] if basins else None
     bins = [b for _, b in profiles]
-    error_s = _error_vector(len(samples["N_k"]), profiles, basins, scale)
+    error_s = _error_vector(len(samples.N_k), profiles, basins, scale)
     cumulative = compute_cumulative(lambda m: compute_statistics(mbar, u_n, m, mask_bn, bins), position_n, error_s)
     w_n = mbar.target_weights(u_n)
-    inflation_s = _inflation(error_s, _error_vector(len(samples["N_k"]), *asymptotic, scale))
+    inflation_s = _inflation(error_s, _error_vector(len(samples.N_k), *asymptotic, scale))
     cut_short = _cut_short_verdict(uncertainty, production.size)
-    layout = _Layout(len(samples["N_k"]), len(basins[0].names) if basins else 0, [b[1] for b in bins])
+    layout = _Layout(len(samples.N_k), len(basins[0].names) if basins else 0, [b[1] for b in bins])
     crossings = _crossings(data, protocol, production) if basins and not protocol.umbrella else None
     populations, delta_g = (), {}
     if basins:
@@ -130,7 +130,7 @@ def _crossings(data, protocol, production):
     """Per basin, walkers whose production configurations were both inside and outside it."""
     values_rtc = data.values_rtc[:, production]
     flat = values_rtc.reshape(-1, values_rtc.shape[-1])
-    masks = basin_masks(protocol, list(data.coordinate_names), data.metadata["periodic"], flat)
+    masks = basin_masks(protocol, list(data.coordinate_names), data.periodic, flat)
     return {name: count_crossing_walkers(mask.reshape(values_rtc.shape[:2])) for name, mask in masks.items()}
 
 

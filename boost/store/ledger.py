@@ -203,18 +203,25 @@ class LedgerData:
     ----------
     conditions : tuple of Condition
     coordinate_names : tuple of str
+    periodic : tuple of bool, per coordinate (in coordinate_names' order): True for angles
+        that wrap at ±π
+    angle_coordinates : frozenset of str, the coordinates measured in radians (the rest in nm)
+    umbrella_coordinates : tuple of str, the coordinates umbrellas act on, in ladder-axis order
     cycle_t, time_t, production_t : ndarray, shape (n_cycles,)
     condition_rt : ndarray of int, shape (n_walkers, n_cycles)
     potential_rt, volume_rt : ndarray, shape (n_walkers, n_cycles), kJ/mol and nm³ (NaN: none)
     values_rtc : ndarray, shape (n_walkers, n_cycles, n_coordinates), nm or rad
     u_krt : ndarray, shape (n_conditions, n_walkers, n_cycles), kT
     swaps : ndarray, shape (n_swap_rows, 5): cycle, condition_i, condition_j, attempts, accepted
-    metadata : dict
+    metadata : dict, the ledger's meta table as written (run id, protocol text and hash, ...)
     frame_crcs : tuple (per walker) of tuples of int: crc32 of each recorded frame, in file order
     """
 
     conditions: tuple
     coordinate_names: tuple
+    periodic: tuple
+    angle_coordinates: frozenset
+    umbrella_coordinates: tuple
     cycle_t: np.ndarray
     time_t: np.ndarray
     production_t: np.ndarray
@@ -383,6 +390,9 @@ def _read(connection, path, metadata, conditions, with_reduced, *, keep_arrays=T
         return None, n_cycles, first_bad
     data = LedgerData(
         conditions=conditions, coordinate_names=names,
+        periodic=tuple(bool(p) for p in metadata["periodic"]),
+        angle_coordinates=frozenset(n for n, unit in metadata["units"].items() if unit == "rad"),
+        umbrella_coordinates=tuple(metadata["umbrella"]),
         cycle_t=cycles[:, 0].astype(int), time_t=cycles[:, 1], production_t=cycles[:, 2].astype(bool),
         condition_rt=table[:, :, 0].T.astype(int), potential_rt=np.ascontiguousarray(table[:, :, 1].T),
         volume_rt=np.ascontiguousarray(table[:, :, 2].T),

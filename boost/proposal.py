@@ -30,7 +30,7 @@ from .ladder_design import EnergyMoments, design_ladder, insert_rungs
 from .protocol import UmbrellaAxis, parse_protocol
 from .protocol_dump import dump_protocol
 from .system_spec import FileRef
-from .units import beta, energy_in, format_quantity, parse_quantity
+from .units import beta, energy_in, format_coordinate, format_quantity, parse_quantity
 from .window_design import (MARGIN, design_windows, insert_windows, neighbour_pairs, predict_neighbour_overlaps,
                             profile_on_grid)
 
@@ -466,7 +466,7 @@ def _rounded(design, coordinate, width, profile, b, share):
 
 
 def _show(value, coordinate):
-    return f"{math.degrees(value):.1f} deg" if coordinate.periodic or coordinate.unit == "rad" else f"{value:.4f} nm"
+    return format_coordinate(value, coordinate.periodic or coordinate.unit == "rad")
 
 
 #: Below this fraction of the target, a run's weakest neighbour pair dominates its error on

@@ -29,6 +29,7 @@ from .protocol import PlatformSettings, parse_protocol
 from .provenance import read_protocol_at_commit
 from .spec import read_text
 from .store import LEDGER, PROTOCOL, RunFolder, write_atomically
+from .units import format_coordinate
 
 log = logging.getLogger("boost")
 
@@ -280,11 +281,11 @@ def headline_numbers(analysis):
 
 
 def _profile_numbers(analysis, profile):
-    units = ["deg" if name in analysis.angle_coordinates else "nm" for name in profile.coordinates]
+    angles = [name in analysis.angle_coordinates for name in profile.coordinates]
     along = ", ".join(profile.coordinates)
     for index in np.ndindex(profile.f.shape):
-        where = ", ".join(f"{name} = {centres[i]:.4g} {u}" for name, centres, i, u
-                          in zip(profile.coordinates, profile.centres, index, units))
+        where = ", ".join(f"{name} = {format_coordinate(centres[i], angle)}" for name, centres, i, angle
+                          in zip(profile.coordinates, profile.centres, index, angles))
         yield Headline(f"PMF along {along} at {where}", analysis.energy_unit,
                        float(profile.f[index]), float(profile.df[index]))
 

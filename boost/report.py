@@ -11,14 +11,20 @@ from pathlib import Path
 import numpy as np
 
 from .exceptions import RunFolderError
+from .units import coordinate_shown, coordinate_unit_shown
 
 
 def _fmt(value, digits=3):
     return "nan" if value is None or not np.isfinite(value) else f"{value:.{digits}f}"
 
 
-def _axis_label(name, centres_in_degrees):
-    return f"{name} ({'deg' if centres_in_degrees else 'nm'})"
+def _axis_label(name, is_angle):
+    return f"{name} ({coordinate_unit_shown(is_angle)})"
+
+
+def _shown_centres(analysis, profile):
+    """A profile's bin centres as people read them (degrees for angles)."""
+    return [coordinate_shown(c, _is_angle(analysis, n)) for c, n in zip(profile.centres, profile.coordinates)]
 
 
 def _is_angle(analysis, name):
@@ -227,7 +233,7 @@ def _profile_name(profile):
 def _write_profile(analysis, k, profile, out):
     unit, method = analysis.energy_unit, _method(analysis)
     labels = [_axis_label(n, _is_angle(analysis, n)) for n in profile.coordinates]
-    grids = np.meshgrid(*profile.centres, indexing="ij")
+    grids = np.meshgrid(*_shown_centres(analysis, profile), indexing="ij")
     verdicts = (analysis.verdicts.profiles[k] if analysis.verdicts is not None
                 else np.full(profile.f.shape, None, dtype=object))
     rows = [[_fmt(g[index], 5) for g in grids] + [_fmt(profile.f[index], 4), _fmt(profile.df[index], 4),
@@ -320,14 +326,14 @@ def _plot_all(analysis, out):
     for profile in analysis.profiles:
         fig, ax = plt.subplots(figsize=(6, 4))
         if len(profile.coordinates) == 1:
-            x, f, df = profile.centres[0], profile.f, profile.df
+            x, f, df = _shown_centres(analysis, profile)[0], profile.f, profile.df
             ax.plot(x, f, "o-", ms=3, color="tab:blue")
             ax.fill_between(x, f - df, f + df, color="tab:blue", alpha=0.25, label="± one standard error")
             ax.set_xlabel(_axis_label(profile.coordinates[0], _is_angle(analysis, profile.coordinates[0])))
             ax.set_ylabel(f"PMF ({analysis.energy_unit})")
             ax.legend(loc="best")
         else:
-            image = ax.pcolormesh(profile.centres[0], profile.centres[1], profile.f.T, shading="nearest")
+            image = ax.pcolormesh(*_shown_centres(analysis, profile), profile.f.T, shading="nearest")
             fig.colorbar(image, ax=ax, label=f"PMF ({analysis.energy_unit})")
             ax.set_xlabel(_axis_label(profile.coordinates[0], _is_angle(analysis, profile.coordinates[0])))
             ax.set_ylabel(_axis_label(profile.coordinates[1], _is_angle(analysis, profile.coordinates[1])))
@@ -348,7 +354,7 @@ def _plot_windows(analysis, out, plt):
     name = analysis.umbrella_coordinates[0]
     for values in analysis.window_values:
         if len(values):
-            ax.hist(values[:, 0], bins=40, histtype="step")
+            ax.hist(coordinate_shown(values[:, 0], _is_angle(analysis, name)), bins=40, histtype="step")
     ax.set_xlabel(_axis_label(name, _is_angle(analysis, name)))
     ax.set_ylabel("samples")
     ax.set_title("coordinate histograms, one per window")

@@ -1,10 +1,10 @@
 """Plain-text description of a plan: what a run will do, for ``boost check`` and ``boost run``."""
 
-import math
+from .units import format_coordinate
 
 
 def _angle_or_length(value, unit):
-    return f"{math.degrees(value):.1f} deg" if unit == "rad" else f"{value:.4g} nm"
+    return format_coordinate(value, unit == "rad")
 
 
 def describe_plan(plan):

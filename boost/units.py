@@ -13,6 +13,7 @@ import math
 import re
 import reprlib
 
+import numpy as np
 import pint
 
 from .exceptions import ProtocolError
@@ -179,6 +180,21 @@ def _written_forms(value, dimension):
     if dimension == "memory":
         return [(value / size, unit) for unit, size in _BINARY_PREFIXES if value % size == 0] + [(value, "byte")]
     return [(value, _WRITTEN_UNITS[dimension])]
+
+
+def coordinate_unit_shown(is_angle):
+    """The unit a coordinate is shown in: degrees for angles (radians inside boost), else nm."""
+    return "deg" if is_angle else "nm"
+
+
+def coordinate_shown(values, is_angle):
+    """Coordinate values (numbers or arrays, rad or nm) in the unit of coordinate_unit_shown."""
+    return np.degrees(values) if is_angle else values
+
+
+def format_coordinate(value, is_angle):
+    """One coordinate value as text with its unit, e.g. ``"-62.5 deg"`` or ``"0.1234 nm"``."""
+    return f"{math.degrees(value):.1f} deg" if is_angle else f"{value:.4g} nm"
 
 
 def thermal_energy(temperature):

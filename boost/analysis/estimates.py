@@ -42,8 +42,7 @@ def compute_profiles(mbar, u_n, values_nc, data, protocol, scale):
         edges = [bin_edges(protocol, data, name, values[:, i]) for i, name in enumerate(grid)]
         profile = mbar.compute_pmf(u_n, values, edges)
         _warn_sparse_bins(grid, profile.counts)
-        centres = tuple(np.degrees(c) if name in data.angle_coordinates else c
-                        for c, name in zip(profile.centres, grid))
+        centres = tuple(profile.centres)
         f, df = profile.f * scale, profile.df * scale
         bin_n, _, _ = bin_samples(values, edges, len(u_n))
         zero = int(np.nanargmin(np.where(np.isfinite(profile.f), profile.f, np.nan).ravel()))

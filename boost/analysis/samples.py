@@ -11,6 +11,7 @@ from ..conditions import compute_reduced_potentials
 from ..correlation import compute_statistical_inefficiency
 from ..exceptions import AnalysisError, BoostWarning
 from ..reweight import decorrelate
+from ..units import format_coordinate
 
 @dataclass(frozen=True, eq=False)
 class Samples:
@@ -42,13 +43,12 @@ def window_values(data, protocol):
     columns = [data.coordinate_names.index(a.coordinate) for a in protocol.umbrella]
     if not columns:
         return ()
-    angular = [a.coordinate in data.angle_coordinates for a in protocol.umbrella]
     production = data.production_t
     out = []
     for k in range(len(data.conditions)):
         held = (data.condition_rt == k) & production[None, :]
         values = data.values_rtc[held][:, columns]
-        out.append(np.where(angular, np.degrees(values), values))
+        out.append(values)
     return tuple(out)
 
 
@@ -57,9 +57,7 @@ def condition_labels(data, protocol):
     for condition in data.conditions:
         parts = [f"{condition.temperature:.1f} K"] if len(protocol.temperatures) > 1 else []
         for axis, centre in zip(protocol.umbrella, condition.centres):
-            shown = (f"{math.degrees(centre):.1f} deg" if axis.coordinate in data.angle_coordinates
-                     else f"{centre:.4g} nm")
-            parts.append(f"{axis.coordinate} = {shown}")
+            parts.append(f"{axis.coordinate} = {format_coordinate(centre, axis.coordinate in data.angle_coordinates)}")
         labels.append(f"condition {condition.index} ({', '.join(parts) or 'unbiased'})")
     return tuple(labels)
 

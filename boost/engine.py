@@ -227,11 +227,12 @@ class Walker:
             self.context.setParameter(centre_parameter(name), centre)
             self.context.setParameter(spring_parameter(name), spring)
         old = self.condition
+        # plain numbers in OpenMM's own units (nm/ps, K): the same values without unit objects
         if old is not None and old.temperature != condition.temperature:
             velocities = self.context.getState(getVelocities=True).getVelocities(asNumpy=True)
             scale = np.sqrt(condition.temperature / old.temperature)
-            self.context.setVelocities(velocities * scale)
-        self.integrator.setTemperature(condition.temperature * unit.kelvin)
+            self.context.setVelocities(velocities.value_in_unit(unit.nanometer / unit.picosecond) * scale)
+        self.integrator.setTemperature(condition.temperature)
         for name in self.barostat_temperatures:
             self.context.setParameter(name, condition.temperature)
         self.condition = condition

@@ -318,8 +318,7 @@ def _measured_neighbour_overlaps(analysis, periodic):
     from boost.diagnostics import neighbour_overlaps
 
     overlap = analysis.overlap
-    values = [value for _, _, value in neighbour_overlaps(overlap, (len(overlap),))]
-    return values + [min(overlap[0, -1], overlap[-1, 0])] if periodic else values
+    return [value for _, _, value in neighbour_overlaps(overlap, (len(overlap),), circles=(0,) if periodic else ())]
 
 
 # 22 particles (d = 66) in one harmonic well; the trial ladder spans 300-900 K.

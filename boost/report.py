@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from .exceptions import RunFolderError
+from .report_page import PAGE, write_page
 from .units import coordinate_shown, coordinate_unit_shown
 
 
@@ -144,7 +145,7 @@ def _bound_notes(basins):
 OUTPUT_FILES = frozenset({"summary.json", "conditions.csv", "overlap.csv", "basins.csv",
                           "free-energy-differences.csv", "swap-acceptance.csv", "round-trips.csv",
                           "neighbour-swaps.csv", "convergence.csv", "windows.png", "walker-traces.png",
-                          "swap-acceptance.png", "convergence.png"})
+                          "swap-acceptance.png", "convergence.png", "overlap.png", PAGE})
 
 
 def claim_output_folder(out):
@@ -184,9 +185,21 @@ def write_report(analysis, folder=None):
         _write_swaps(analysis, out)
     if analysis.verdicts is not None and analysis.verdicts.cumulative is not None:
         _write_convergence(analysis, out)
-    (out / "summary.json").write_text(json.dumps(_summary(analysis), indent=2))
+    summary = _summary(analysis)
+    (out / "summary.json").write_text(json.dumps(summary, indent=2))
     _plot_all(analysis, out)
+    write_page(out, summary, analysis.about, _page_warnings(analysis))
     return out
+
+
+def _page_warnings(analysis):
+    """What the terminal summary warns of, for the report page."""
+    notes = [f"{analysis.condition_labels[i]} and {analysis.condition_labels[j]} overlap poorly "
+             f"(MBAR overlap {o:.3f}): add windows between them or soften the springs." for i, j, o in analysis.poor_pairs]
+    if analysis.basins is not None:
+        notes += _bound_notes(analysis.basins)
+        notes += [line for line in _verdict_notes(analysis) if ": settled," not in line]
+    return [note.removeprefix("note: ").strip() for note in notes if note.strip()]
 
 
 def _write_rows(path, header, rows):
@@ -341,12 +354,30 @@ def _plot_all(analysis, out):
         fig.tight_layout()
         fig.savefig(out / f"{_profile_name(profile)}.png", dpi=120)
         plt.close(fig)
+    if len(analysis.overlap) > 1:
+        _plot_overlap(analysis, out, plt)
     if analysis.window_values:
         _plot_windows(analysis, out, plt)
     if analysis.swaps is not None:
         _plot_swaps(analysis, out, plt)
     if analysis.verdicts is not None and analysis.verdicts.cumulative is not None:
         _plot_convergence(analysis, out, plt)
+
+
+def _plot_overlap(analysis, out, plt):
+    n = len(analysis.overlap)
+    fig, ax = plt.subplots(figsize=(5.5, 4.5))
+    image = ax.imshow(analysis.overlap, cmap="viridis", vmin=0, origin="upper")
+    fig.colorbar(image, ax=ax, label="MBAR overlap")
+    ticks = np.arange(n) if n <= 24 else np.arange(0, n, max(1, n // 12))
+    ax.set_xticks(ticks)
+    ax.set_yticks(ticks)
+    ax.set_xlabel("condition")
+    ax.set_ylabel("condition")
+    ax.set_title("overlap between conditions")
+    fig.tight_layout()
+    fig.savefig(out / "overlap.png", dpi=120)
+    plt.close(fig)
 
 
 def _plot_windows(analysis, out, plt):

@@ -20,14 +20,14 @@ from ..reweight import Reweighting
 from ..units import energy_in
 from .errorbars import compute_bootstrap_errors, uses_bootstrap
 from .estimates import compute_basin_results, compute_profiles, population_interval
-from .inputs import load_run
-from .results import Analysis, BasinResult, ProfileResult, Uncertainty
+from .inputs import describe_run_folder, load_run
+from .results import Analysis, BasinResult, ProfileResult, RunAbout, Uncertainty
 from .verdicts import Verdicts, compute_verdicts
 from .samples import (MBAR_COPIES, MBAR_SHARE, MIN_SAMPLES, Samples, basin_masks,
                       compute_sample_reduced_potentials, condition_labels, gather, select_samples,
                       thinning_stride, window_values)
 
-__all__ = ["Analysis", "BasinResult", "ProfileResult", "Samples", "Uncertainty", "Verdicts", "analyse_run", "basin_masks",
+__all__ = ["Analysis", "BasinResult", "ProfileResult", "RunAbout", "Samples", "Uncertainty", "Verdicts", "analyse_run", "basin_masks",
            "compute_sample_reduced_potentials", "condition_labels", "load_run", "population_interval",
            "select_samples", "thinning_stride", "MBAR_COPIES", "MBAR_SHARE", "MIN_SAMPLES"]
 
@@ -85,6 +85,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
         condition_labels=labels, window_values=window_values(data, protocol),
         umbrella_coordinates=tuple(a.coordinate for a in protocol.umbrella),
         angle_coordinates=data.angle_coordinates,
-        walker_traces=data.condition_rt[:, data.production_t])
+        walker_traces=data.condition_rt[:, data.production_t],
+        about=describe_run_folder(folder, protocol, data))
 
 

@@ -13,6 +13,7 @@ from ..protocol import parse_protocol
 from ..spec import differing_paths, parse_yaml, read_text
 from ..store import RunFolder, inspect_frames, protocol_hash, read_checkpoint_file, read_ledger, read_run_id
 from ..store.checkpoints import NEWEST
+from .results import RunAbout
 
 #: Top-level protocol sections that may be edited between a run and its analysis.
 EDITABLE_AFTER_RUN = ("basins", "analysis", "title")
@@ -75,3 +76,33 @@ def _report_frames(folder, data):
         if check.problem:
             warnings.warn(f"{check.problem} (frames are not used by this analysis; its numbers are unaffected).",
                           BoostWarning)
+
+
+def describe_run_folder(folder, protocol, data):
+    """What was run, for a report's header (RunAbout): the protocol and provenance.json."""
+    folder = RunFolder(folder)
+    try:
+        record = folder.read_provenance()
+    except RunFolderError:
+        record = {}
+    git = record.get("git") if isinstance(record.get("git"), dict) else {}
+    system = protocol.system
+    run = protocol.run
+    cycle_ps = run.steps_per_cycle * protocol.timestep
+    text = data.metadata.get("protocol_text")
+    return RunAbout(
+        title=protocol.title, system=_system_text(system),
+        conditions=len(data.conditions), walkers=int(data.condition_rt.shape[0]), cycle_ps=cycle_ps,
+        cycles_planned=run.n_cycles, cycles_done=len(data.cycle_t), production_ps=run.production_cycles * cycle_ps,
+        platform=str(record.get("platform", "")), commit=str(git.get("commit") or ""),
+        protocol_text=text if isinstance(text, str) else "")
+
+
+def _system_text(system):
+    """The system as the protocol names it: its title, its bundled name or file, or its kind."""
+    if getattr(system, "title", ""):
+        return system.title
+    if getattr(system, "reference", None):
+        return str(system.reference)
+    key = getattr(system, "source_key", None)
+    return f"{key} (written in the protocol)" if key else "written in the protocol"

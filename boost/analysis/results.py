@@ -54,6 +54,27 @@ class Uncertainty:
 
 
 @dataclass(frozen=True)
+class RunAbout:
+    """What was run, for the header of a report: read from the run folder, never measured."""
+
+    title: str
+    system: str              # the system's title, or its bundled name / spec file
+    conditions: int
+    walkers: int
+    cycle_ps: float
+    cycles_planned: int      # equilibration + production, as the protocol asks
+    cycles_done: int         # complete cycles in the ledger now
+    production_ps: float     # planned production per walker
+    platform: str            # from provenance.json ('' when it cannot be read)
+    commit: str              # the protocol's git commit at run time ('' when none was recorded)
+    protocol_text: str
+
+    @property
+    def partial(self):
+        return self.cycles_done < self.cycles_planned
+
+
+@dataclass(frozen=True)
 class Analysis:
     """Everything ``boost analyze`` reports. Energies in ``energy_unit`` at ``temperature``."""
 
@@ -80,5 +101,6 @@ class Analysis:
     walker_traces: np.ndarray      # condition_rt over production cycles
     uncertainty: Uncertainty = Uncertainty("asymptotic")
     verdicts: object = None        # analysis.verdicts.Verdicts
+    about: RunAbout | None = None
 
 

@@ -5,8 +5,9 @@ walker per window and no swaps, replica exchange adds swaps between walkers.
 """
 
 import logging
-import time
 import sqlite3
+import sys
+import time
 from contextlib import contextmanager
 from dataclasses import replace
 
@@ -17,8 +18,9 @@ from .conditions import compute_reduced_potentials
 from .engine import PlatformChoice, derive_seeds
 from .exceptions import BoostError, RunFolderError, SimulationError
 from .exchange import swap_for_cycle
-from .plan import describe_run, frame_bytes, ledger_header, make_plan
 from .lineage import check_extension
+from .plan import describe_run, frame_bytes, ledger_header, make_plan
+from .run_status import RunStatus
 from .store import FrameWriter, RunFolder, choose_checkpoint, write_checkpoint
 from .store.folder import OtherProtocol
 from .workers import WalkerSetup, open_workers
@@ -159,6 +161,7 @@ class Scheduler:
         bar = tqdm(total=run.n_cycles, initial=start, unit="cycle", disable=not self.progress,
                    desc="boost run", dynamic_ncols=True)
         began = time.perf_counter()
+        status = RunStatus(plan.conditions, self.periodic_a, run.n_cycles, start) if self.progress else None
         with bar:
             cycle = start
             while cycle < run.n_cycles:
@@ -178,6 +181,10 @@ class Scheduler:
                     condition_r=assignment, potential_r=[o.potential for o in reports],
                     volume_r=[o.volume for o in reports], values_rc=values_rc, u_kr=u_kr,
                     swaps=tally, frames=written)
+                if status is not None:
+                    status.add(cycle, assignment, values_rc[:, self.umbrella_columns], tally)
+                    if status.due():
+                        bar.write(status.line(cycle + 1), file=sys.stderr)
                 assignment = new_assignment
                 workers.assign(assignment)
                 if (cycle + 1) % run.checkpoint_every == 0 or cycle + 1 == run.n_cycles:

@@ -346,8 +346,11 @@ def _plot_all(analysis, out):
             ax.set_ylabel(f"PMF ({analysis.energy_unit})")
             ax.legend(loc="best")
         else:
-            image = ax.pcolormesh(*_shown_centres(analysis, profile), profile.f.T, shading="nearest")
+            x, y = _shown_centres(analysis, profile)
+            f = np.ma.masked_invalid(profile.f.T)
+            image = ax.contourf(x, y, f, levels=20, cmap="viridis")
             fig.colorbar(image, ax=ax, label=f"PMF ({analysis.energy_unit})")
+            _outline_basins(ax, analysis, profile.coordinates)
             ax.set_xlabel(_axis_label(profile.coordinates[0], _is_angle(analysis, profile.coordinates[0])))
             ax.set_ylabel(_axis_label(profile.coordinates[1], _is_angle(analysis, profile.coordinates[1])))
         ax.set_title(f"free-energy profile at {analysis.temperature:.1f} K")
@@ -362,6 +365,27 @@ def _plot_all(analysis, out):
         _plot_swaps(analysis, out, plt)
     if analysis.verdicts is not None and analysis.verdicts.cumulative is not None:
         _plot_convergence(analysis, out, plt)
+
+
+def _outline_basins(ax, analysis, coordinates):
+    """Each basin of a 2-D profile's axes as a labelled box (two or four where it wraps at ±180°)."""
+    from matplotlib.patches import Rectangle
+
+    limits = (ax.get_xlim(), ax.get_ylim())
+    for name, intervals in (analysis.basin_intervals or {}).items():
+        if not any(c in intervals for c in coordinates):
+            continue
+        spans = []
+        for c, (low, high) in zip(coordinates, limits):      # a basin silent on an axis spans all of it
+            lower, upper = ((float(np.clip(coordinate_shown(v, _is_angle(analysis, c)), low, high))
+                             for v in intervals[c]) if c in intervals else (low, high))
+            spans.append([(lower, upper)] if lower <= upper else [(lower, 180.0), (-180.0, upper)])
+        for (x0, x1) in spans[0]:
+            for (y0, y1) in spans[1]:
+                ax.add_patch(Rectangle((x0, y0), x1 - x0, y1 - y0, fill=False, edgecolor="black", lw=1.2, ls="--"))
+        (x0, _), (y0, _) = spans[0][0], spans[1][0]
+        ax.annotate(name, (x0, y0), xytext=(4, 4), textcoords="offset points", fontsize=9,
+                    bbox={"boxstyle": "round,pad=0.2", "facecolor": "white", "alpha": 0.8, "linewidth": 0})
 
 
 def _plot_overlap(analysis, out, plt):

@@ -50,3 +50,26 @@ def test_profile_in_radians_inside_and_degrees_in_its_table(tmp_path, write_prot
     shown = np.array([float(row[0]) for row in rows[1:]])
     np.testing.assert_allclose(shown, np.degrees(centres), atol=1e-5)
     assert any(label.endswith("(phi = -150.0 deg)") for label in analysis.condition_labels)
+
+
+def test_basins_outlined_on_a_2d_profile_wrap_at_180_degrees():
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from types import SimpleNamespace
+
+    from boost.report import _outline_basins
+
+    # C7ax-like basin 50° < φ < 100°, any ψ; a basin across ±180° in φ (from 150° to -150°)
+    analysis = SimpleNamespace(angle_coordinates=frozenset({"phi", "psi"}), basin_intervals={
+        "ax": {"phi": (math.radians(50), math.radians(100))},
+        "across": {"phi": (math.radians(150), math.radians(-150)), "psi": (0.0, math.radians(90))}})
+    fig, ax = plt.subplots()
+    ax.set_xlim(-180, 180)
+    ax.set_ylim(-180, 180)
+    _outline_basins(ax, analysis, ("phi", "psi"))
+    boxes = sorted((round(p.get_x()), round(p.get_y()), round(p.get_width()), round(p.get_height()))
+                   for p in ax.patches)
+    plt.close(fig)
+    # exact geometry of the intervals above, in degrees
+    assert boxes == [(-180, 0, 30, 90), (50, -180, 50, 360), (150, 0, 30, 90)]

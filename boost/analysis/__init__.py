@@ -86,6 +86,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
         umbrella_coordinates=tuple(a.coordinate for a in protocol.umbrella),
         angle_coordinates=data.angle_coordinates,
         walker_traces=data.condition_rt[:, data.production_t],
-        about=describe_run_folder(folder, protocol, data))
+        about=describe_run_folder(folder, protocol, data),
+        basin_intervals={name: dict(intervals) for name, intervals in protocol.basins.items()})
 
 

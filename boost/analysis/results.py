@@ -102,5 +102,6 @@ class Analysis:
     uncertainty: Uncertainty = Uncertainty("asymptotic")
     verdicts: object = None        # analysis.verdicts.Verdicts
     about: RunAbout | None = None
+    basin_intervals: dict = None   # name -> {coordinate: (lower, upper)} in nm or rad; lower > upper wraps
 
 

@@ -53,8 +53,9 @@ def write_page(out, summary, about, warnings_seen=()):
     for heading, belongs in _SECTIONS:
         mine = [name for name in plots if belongs(name)]
         placed.update(mine)
-        if mine:
-            parts.append(f"<h2>{heading}</h2>" + "".join(_image(out / name) for name in mine))
+        extra = _exchange_tables(summary) if heading == "Exchange between walkers" else ""
+        if mine or extra:
+            parts.append(f"<h2>{heading}</h2>" + "".join(_image(out / name) for name in mine) + extra)
     rest = [name for name in plots if name not in placed]
     if rest:
         parts.append("<h2>Other plots</h2>" + "".join(_image(out / name) for name in rest))
@@ -141,6 +142,20 @@ def _headline(summary):
              "<th>± error</th><th>95% low</th><th>95% high</th><th class=\"name\">verdict</th></tr>"
              + rows + "</table>") if differences else ""
     return "<h2>Headline numbers</h2>" + table + delta
+
+
+def _exchange_tables(summary):
+    swaps = summary.get("neighbour swaps") or []
+    rows = "".join(
+        f"<tr><td class=\"name\">{i} ↔ {j}</td><td>{_number(s['acceptance'], 3)}</td><td>{s['attempts']}</td>"
+        f"{_verdict_cell(s.get('verdict'))}</tr>" for s in swaps for i, j in [s["conditions"]])
+    table = ("<table id=\"swaps\"><tr><th class=\"name\">neighbours</th><th>accepted (fraction)</th>"
+             "<th>attempts</th><th class=\"name\">verdict</th></tr>" + rows + "</table>") if swaps else ""
+    trips = summary.get("round trips per walker")
+    if trips is not None:
+        table += ("<p>Round trips from the first condition to the last and back, per walker: "
+                  + ", ".join(f"walker {r}: {t}" for r, t in enumerate(trips)) + ".</p>")
+    return table
 
 
 def _conditions(summary):

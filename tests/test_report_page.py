@@ -175,3 +175,20 @@ def test_a_run_analysed_before_its_end_says_partial(tmp_path):
     result = _chromium("--dump-dom", (out / "report.html").resolve().as_uri())
     text = re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", result.stdout))
     assert f"partial, cycle 150 of {protocol.run.n_cycles}" in text
+
+
+@needs_browser
+def test_exchange_runs_show_their_swaps_and_round_trips(tmp_path):
+    from conftest import SHORT_LADDER
+
+    (tmp_path / "p.yaml").write_text(SHORT_LADDER.replace("300 ps", "60 ps").replace("20 ps", "4 ps"))
+    out = write_report(analyse_run(run_protocol(load_protocol(tmp_path / "p.yaml"), tmp_path / "run",
+                                                progress=False), energy_unit="kT"))
+    summary = json.loads((out / "summary.json").read_text())
+    page = _rendered(out / "report.html")
+    header, *rows = page.tables["swaps"]
+    assert len(rows) == len(summary["neighbour swaps"]) == 3
+    for row, swap in zip(rows, summary["neighbour swaps"]):
+        assert abs(float(row[1]) - swap["acceptance"]) <= 0.5e-3 + 1e-12
+        assert int(row[2]) == swap["attempts"]
+    assert len(page.images) == len(list(out.glob("*.png")))

@@ -304,6 +304,8 @@ def _summary(analysis):
               "cycles in ledger": analysis.n_cycles, "error bars": _uncertainty_summary(analysis),
               "conditions": [{"label": analysis.condition_labels[k], "samples used": int(analysis.samples_k[k]),
                               "1 in (memory thinning)": int(analysis.thinning_k[k]),
+                              "equilibration discarded (cycles)": int(analysis.t0_k[k]),
+                              "statistical inefficiency (cycles)": _number(analysis.g_k[k]),
                               "f (kT)": float(analysis.f_k[k]), "f error (kT)": _number(analysis.df_k[k])}
                              for k in range(len(analysis.samples_k))]}
     if analysis.basins is not None:

@@ -161,10 +161,12 @@ def _exchange_tables(summary):
 def _conditions(summary):
     rows = "".join(
         f"<tr><td class=\"name\">{_e(c['label'])}</td><td>{c['samples used']}</td>"
-        f"<td>{c['1 in (memory thinning)']}</td><td>{_number(c['f (kT)'], 3)}</td>"
+        f"<td>{c['1 in (memory thinning)']}</td><td>{c['equilibration discarded (cycles)']}</td>"
+        f"<td>{_number(c['statistical inefficiency (cycles)'], 1)}</td><td>{_number(c['f (kT)'], 3)}</td>"
         f"<td>{_number(c['f error (kT)'], 3)}</td></tr>" for c in summary["conditions"])
     return ("<h2>Per condition</h2><table id=\"conditions\"><tr><th class=\"name\">condition</th>"
-            "<th>uncorrelated samples used</th><th>thinned 1 in</th><th>f (kT)</th><th>± error (kT)</th></tr>"
+            "<th>uncorrelated samples used</th><th>thinned 1 in</th><th>equilibration discarded (cycles)</th>"
+            "<th>statistical inefficiency (cycles)</th><th>f (kT)</th><th>± error (kT)</th></tr>"
             + rows + "</table>")
 
 

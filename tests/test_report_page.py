@@ -115,6 +115,12 @@ def test_the_page_shows_the_numbers_of_summary_json(analysed):
     (difference,) = summary["free-energy differences"]
     assert abs(float(row[1]) - difference["ΔG (kT)"]) <= 0.5e-3 + 1e-12
     assert abs(float(row[2]) - difference["ΔG error (kT)"]) <= 0.5e-3 + 1e-12
+    header, *rows = page.tables["conditions"]
+    assert [row[0] for row in rows] == [c["label"] for c in summary["conditions"]]
+    for row, condition in zip(rows, summary["conditions"]):
+        assert int(row[1]) == condition["samples used"]
+        assert int(row[3]) == condition["equilibration discarded (cycles)"]
+        assert abs(float(row[4]) - condition["statistical inefficiency (cycles)"]) <= 0.05 + 1e-12
 
 
 @needs_browser

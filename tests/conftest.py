@@ -105,3 +105,25 @@ def exact_high_well_left_population():
     model = read_model(load_yaml(REPO / "systems" / "double-well-high.yaml", what="system").get("model"))
     sides = {"left": {"x": (-np.inf, 0.0)}, "right": {"x": (0.0, np.inf)}}
     return model.compute_exact_populations(300.0, sides)["left"]
+
+
+def run_stopped_before(protocol, folder, cycle):
+    """Run ``protocol`` into ``folder`` and stop it as a kill would just before recording
+    ``cycle``: the folder then holds cycles 0 to cycle - 1, as a run still going does."""
+    from boost.scheduler import run_protocol
+    from boost.store import Ledger
+
+    real = Ledger.record_cycle
+
+    def killed(self, at, **kwargs):
+        if at == cycle:
+            raise KeyboardInterrupt
+        return real(self, at, **kwargs)
+
+    Ledger.record_cycle = killed
+    try:
+        with pytest.raises(KeyboardInterrupt):
+            run_protocol(protocol, folder, progress=False)
+    finally:
+        Ledger.record_cycle = real
+    return folder

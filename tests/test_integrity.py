@@ -23,7 +23,7 @@ from boost.scheduler import run_protocol
 from boost.store import Ledger, LedgerDamage, read_ledger
 
 sys.path.insert(0, str(Path(__file__).parent))
-from conftest import double_well_protocol  # noqa: E402
+from conftest import double_well_protocol, run_stopped_before  # noqa: E402
 from test_cli import assert_one_line_error, boost  # noqa: E402
 
 # Two temperatures that swap, so checkpoints hold two walkers and the swap RNG; checkpoints
@@ -62,19 +62,7 @@ def runs(tmp_path_factory):
     (base / "p.yaml").write_text(PROTOCOL)
     protocol = load_protocol(base / "p.yaml")
     finished = run_protocol(protocol, base / "finished", progress=False)
-    real = Ledger.record_cycle
-
-    def killed(self, cycle, **kwargs):
-        if cycle == KILLED_AT:
-            raise KeyboardInterrupt         # a kill between two checkpoints
-        return real(self, cycle, **kwargs)
-
-    Ledger.record_cycle = killed
-    try:
-        with pytest.raises(KeyboardInterrupt):
-            run_protocol(protocol, base / "partial", progress=False)
-    finally:
-        Ledger.record_cycle = real
+    run_stopped_before(protocol, base / "partial", KILLED_AT)      # a kill between two checkpoints
     return {"protocol": protocol, "finished": finished, "partial": base / "partial", "numbers": numbers(finished)}
 
 

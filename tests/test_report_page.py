@@ -19,8 +19,7 @@ from boost.protocol import load_protocol
 from boost.report import write_report
 from boost.report_page import CAUTIONS
 from boost.scheduler import run_protocol
-from boost.store import Ledger
-from conftest import double_well_protocol
+from conftest import double_well_protocol, run_stopped_before
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 needs_browser = pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed (apt-get install chromium)")
@@ -164,19 +163,7 @@ def test_cautions_are_the_readmes():
 def test_a_run_analysed_before_its_end_says_partial(tmp_path):
     (tmp_path / "p.yaml").write_text(WINDOWS)
     protocol = load_protocol(tmp_path / "p.yaml")
-    real = Ledger.record_cycle
-
-    def stopped(self, cycle, **kwargs):
-        if cycle == 150:
-            raise KeyboardInterrupt         # as a run still going looks to the analysis
-        return real(self, cycle, **kwargs)
-
-    Ledger.record_cycle = stopped
-    try:
-        with pytest.raises(KeyboardInterrupt):
-            run_protocol(protocol, tmp_path / "run", progress=False)
-    finally:
-        Ledger.record_cycle = real
+    run_stopped_before(protocol, tmp_path / "run", 150)      # as a run still going looks to the analysis
     out = write_report(analyse_run(tmp_path / "run", energy_unit="kT"))
     result = _chromium("--dump-dom", (out / "report.html").resolve().as_uri())
     text = re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", result.stdout))

@@ -13,6 +13,7 @@ kT; potential_r in kJ/mol; values_ra[r, a] the umbrella coordinates in nm or rad
 """
 
 import itertools
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -103,3 +104,30 @@ def compute_unbiased_reduced_potential(temperature, potential_n, *, volume_n=Non
     if pressure is not None:
         energy = energy + pressure * BAR_NM3 * np.asarray(volume_n, dtype=float)
     return beta(temperature) * energy
+
+
+def same_condition(a, b):
+    """Whether two conditions are the same thermodynamic state (to rounding of the values
+    a protocol was read from: 1e-9 relative)."""
+    return (len(a.centres) == len(b.centres)
+            and np.allclose((a.temperature, *a.centres, *a.springs), (b.temperature, *b.centres, *b.springs),
+                            rtol=1e-9, atol=1e-12))
+
+
+def index_of_condition(condition, conditions):
+    """Position of ``condition`` in ``conditions`` (see same_condition), or None."""
+    return next((k for k, other in enumerate(conditions) if same_condition(condition, other)), None)
+
+
+def ladder_of(conditions, ladder_shape):
+    """The ladder shape of a subset of a protocol's grid of conditions, or None.
+
+    ``conditions`` (the subset, in grid order) form a ladder of their own when they are
+    the product of the distinct temperatures and window centres they hold, as a grid.
+    """
+    if not conditions:
+        return None
+    axes = [sorted({c.temperature for c in conditions})]
+    axes += [sorted({c.centres[a] for c in conditions}) for a in range(len(ladder_shape) - 1)]
+    shape = tuple(len(values) for values in axes)
+    return shape if math.prod(shape) == len(conditions) else None

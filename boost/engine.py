@@ -277,3 +277,22 @@ class Walker:
             self._state = data
         self.condition = None
         self.apply(condition)
+
+
+
+def read_checkpoint_configurations(system, platform, blobs):
+    """Positions (nm, shape (n_atoms, 3)) and box vectors (nm, (3, 3), or None) held in
+    each walker's OpenMM checkpoint of ``blobs``, loaded into one throwaway context of
+    ``system`` on the PlatformChoice they were written on (checkpoints are platform specific)."""
+    integrator = openmm.VerletIntegrator(0.001)
+    context = openmm.Context(system, integrator, openmm.Platform.getPlatformByName(platform.name),
+                             platform.properties)
+    configurations = []
+    for blob in blobs:
+        context.loadCheckpoint(blob)
+        state = context.getState(getPositions=True)
+        positions = np.asarray(state.getPositions(asNumpy=True).value_in_unit(unit.nanometer))
+        box = np.asarray(state.getPeriodicBoxVectors(asNumpy=True).value_in_unit(unit.nanometer)) \
+            if system.usesPeriodicBoundaryConditions() else None
+        configurations.append((positions, box))
+    return configurations

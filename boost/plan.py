@@ -5,11 +5,14 @@ the plan to the scheduler."""
 import time
 from dataclasses import dataclass
 
-from .conditions import build_conditions
-from .engine import PlatformChoice, choose_platform, prepare_system
+import numpy as np
+
+from .coordinates import compute_coordinate_values_many
+from .engine import PlatformChoice, choose_platform, prepare_system, read_checkpoint_configurations
+from .lineage import choose_nearest, conditions_to_run, read_source_run, source_chain
 from .protocol import resolve_coordinates
 from .provenance import describe_environment, describe_git
-from .store import dcd_frame_bytes
+from .store import choose_checkpoint, dcd_frame_bytes, read_ledger_conditions, read_run_id
 from .systems import build_system
 from .workers import rank_walkers
 
@@ -25,6 +28,9 @@ class Plan:
     system: object
     umbrella_names: tuple
     platform: object
+    ladder_shape: tuple = ()     # temperatures, then window axes, of the conditions run (for swaps)
+    source: object = None        # boost.lineage.SourceRun that run.builds_on names, or None
+    starts: tuple = ()           # per walker (positions nm, box nm or None); empty: the system's own
 
     @property
     def n_walkers(self):
@@ -39,9 +45,10 @@ def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, c
     ``comm`` and ``cores`` (this rank's, see boost.workers.cores_of_rank) tell the
     platform choice how the walkers will be laid out.
     """
+    source = read_source_run(protocol) if protocol.run.builds_on is not None else None
     built = build_system(protocol.system)
     coordinates = resolve_coordinates(protocol, built.topology)
-    conditions = build_conditions(protocol)
+    conditions, ladder_shape = conditions_to_run(protocol, source)
     system, umbrella_names = prepare_system(built, protocol, coordinates)
     settings = platform or protocol.platform
     if settings.name == "auto" and not probe:
@@ -51,7 +58,26 @@ def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, c
         choice = choose_platform(settings, system, built.positions, timestep=protocol.timestep,
                                  n_walkers=n_walkers, cores=cores,
                                  workers=settings.workers if workers is None else workers)
-    return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice)
+    starts = _stored_starts(source, system, conditions, coordinates, umbrella_names, built.masses) if source else ()
+    return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice, ladder_shape, source, starts)
+
+
+def _stored_starts(source, system, conditions, coordinates, umbrella_names, masses):
+    """Each walker's starting configuration: the one stored at the end of the source runs
+    (their newest checkpoints) nearest to its condition (boost.lineage.choose_nearest)."""
+    configurations, temperatures = [], []
+    for folder, cycles in source_chain(source):
+        checkpoint, _ = choose_checkpoint(folder.path, run_id=read_run_id(folder.path), last_intact_cycle=cycles - 1)
+        held = read_ledger_conditions(folder.path)
+        configurations += read_checkpoint_configurations(system, PlatformChoice(*folder.recorded_platform()),
+                                                         checkpoint.walker_states)
+        temperatures += [held[k].temperature for k in checkpoint.scheduler["assignment"]]
+    umbrella = [coordinates[name] for name in umbrella_names]
+    xyz = np.stack([positions for positions, _ in configurations])
+    boxes = None if configurations[0][1] is None else np.stack([box for _, box in configurations])
+    values_na = compute_coordinate_values_many(umbrella, xyz, masses, boxes)
+    chosen = choose_nearest(conditions, values_na, temperatures, [c.periodic for c in umbrella])
+    return tuple(configurations[n] for n in chosen)
 
 
 def describe_run(plan, seeds, swap_seed):

@@ -222,9 +222,9 @@ def _definition(spec):
 
 def _energy_moments(folder):
     """Mean and variance of the potential energy per rung over production cycles."""
-    from .analysis import load_run
+    from .analysis import load_study
 
-    protocol, data = load_run(folder)
+    protocol, data, _ = load_study(folder)
     means, variances = [], []
     for k in range(len(data.conditions)):
         energies = data.potential_rt[(data.condition_rt == k) & data.production_t[None, :]]
@@ -269,10 +269,10 @@ def propose(protocol, source, targets, output, *, refine=False):
         conditions only between neighbours whose measured acceptance or overlap is short
         of the target.
     """
-    from .analysis import load_run
+    from .analysis import load_study
 
     what = what_to_plan(protocol)
-    run_protocol, data = load_run(source.folder)
+    run_protocol, data, _ = load_study(source.folder)
     _check_same_axis(protocol, run_protocol, source.folder, what)
     if refine and _conditions(run_protocol) != _conditions(protocol):
         raise RunFolderError(f"{source.folder}: --refine adds conditions to the run of this very protocol; the "
@@ -354,21 +354,22 @@ def _planning_profile(folder, protocol):
     included, up to PROFILE_SAMPLES per condition: for the shape of a PMF more samples
     beat fewer independent ones, and no error bar is wanted here.
     """
-    from .analysis import compute_sample_reduced_potentials, load_run
+    from .analysis import compute_sample_reduced_potentials, load_study
+    from .analysis.samples import condition_walkers
     from .conditions import compute_unbiased_reduced_potential
     from .reweight import Reweighting
 
     axis = protocol.umbrella[0]
     periodic = protocol.coordinates[axis.coordinate].periodic
     width = 1.0 / math.sqrt(beta(protocol.temperature) * max(axis.springs))
-    run_protocol, data = load_run(folder)
+    run_protocol, data, _ = load_study(folder)
     production = np.flatnonzero(data.production_t)
     walkers, cycles, N_k = [], [], []
     for k in range(len(data.conditions)):
-        walker_t = np.argmax(data.condition_rt[:, production] == k, axis=0)
-        keep = np.unique(np.linspace(0, production.size - 1, min(production.size, PROFILE_SAMPLES)).astype(int))
+        walker_t, held = condition_walkers(data, k, production)
+        keep = np.unique(np.linspace(0, held.size - 1, min(held.size, PROFILE_SAMPLES)).astype(int))
         walkers.append(walker_t[keep])
-        cycles.append(production[keep])
+        cycles.append(held[keep])
         N_k.append(keep.size)
     walkers, cycles = np.concatenate(walkers), np.concatenate(cycles)
     u_kn = compute_sample_reduced_potentials(data, run_protocol, data.conditions, walkers, cycles)

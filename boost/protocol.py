@@ -12,7 +12,7 @@ Internal units: nm, ps, K, kJ/mol, rad, bar.
 import hashlib
 import math
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -42,7 +42,7 @@ class PointSpec:
 
     atoms: object          # mdtraj selection text, an int index, or a tuple of ints
     centre: bool           # True: centre of all selected atoms; False: exactly one atom
-    place: str             # file: key.path, for errors found when resolving
+    place: str = field(compare=False)   # file: key.path, for errors found when resolving
 
 
 @dataclass(frozen=True)
@@ -120,6 +120,7 @@ class RunSettings:
     checkpoint_every: int  # cycles between checkpoints
     minimise: bool
     retries: int           # restarts from the last checkpoint after a blow-up
+    builds_on: str | None = None   # an earlier run folder whose conditions this run adds to, as written
 
     @property
     def n_cycles(self):
@@ -180,6 +181,14 @@ class Protocol:
     @property
     def base_dir(self):
         return self.path.parent
+
+    @property
+    def source_folder(self):
+        """The run folder ``run.builds_on`` names, resolved against this protocol's folder (or None)."""
+        if self.run.builds_on is None:
+            return None
+        path = Path(self.run.builds_on).expanduser()
+        return path if path.is_absolute() else self.base_dir / path
 
     @property
     def n_windows(self):
@@ -477,7 +486,7 @@ def _interval(node, steps_per_cycle, timestep, what, hint=""):
 
 def _read_run(node, timestep):
     node.mapping(allowed=("cycle", "equilibration", "production", "frame_every",
-                          "checkpoint_every", "minimise", "retries"), required=("production",),
+                          "checkpoint_every", "minimise", "retries", "builds_on"), required=("production",),
                  renamed=RENAMED_RUN_KEYS)
     steps_per_cycle = _steps(node.get("cycle", "1 ps"), timestep, "a cycle")
     if steps_per_cycle < 1:
@@ -497,7 +506,19 @@ def _read_run(node, timestep):
         if node.has("checkpoint_every") else max(1, round(DEFAULT_CHECKPOINT_PS / (steps_per_cycle * timestep))),
         minimise=node.get("minimise", True).boolean(),
         retries=node.get("retries", 0).integer(minimum=0),
+        builds_on=_read_source_folder(node.get("builds_on", None)),
     )
+
+
+def _read_source_folder(node):
+    """run.builds_on: a run folder's path as written (resolved against the protocol's folder
+    when the run is planned; boost.lineage checks the folder itself)."""
+    if node.value is None:
+        return None
+    text = node.text()
+    if not text.strip():
+        node.fail("the path of an earlier run folder")
+    return text
 
 
 # -- analysis -------------------------------------------------------------------------

@@ -128,8 +128,9 @@ def _run(run, timestep):
                "production": time(run.production_cycles)}
     if run.frame_every:
         written["frame_every"] = time(run.frame_every)
-    return {**written, "checkpoint_every": time(run.checkpoint_every), "minimise": run.minimise,
-            "retries": run.retries}
+    written = {**written, "checkpoint_every": time(run.checkpoint_every), "minimise": run.minimise,
+               "retries": run.retries}
+    return written if run.builds_on is None else {**written, "builds_on": run.builds_on}
 
 
 def _analysis(analysis, coordinates, run, timestep):

@@ -43,7 +43,7 @@ class Scheduler:
         self.periodic_a = [plan.coordinates[name].periodic for name in plan.umbrella_names]
         self.masses = plan.built.masses
         protocol = plan.protocol
-        self.ladder_shape = (len(protocol.temperatures), *[len(a.centres) for a in protocol.umbrella])
+        self.ladder_shape = plan.ladder_shape
         self.seeds, self.swap_seed = derive_seeds(protocol.seed, plan.n_walkers)
         self.retries_left = protocol.run.retries
         self.run_id = None                       # the folder's, once claimed
@@ -97,10 +97,14 @@ class Scheduler:
             plan = self.plan = _with_recorded_platform(plan, self.folder)
             ledger = self.folder.open_ledger(plan.coordinates)
         else:
+            provenance, header = describe_run(plan, self.seeds, self.swap_seed), ledger_header(plan, self.run_id)
+            if plan.source is not None:
+                header["builds_on"] = provenance["builds_on"] = self.folder.describe_source(plan.source.folder,
+                                                                                            plan.source.cycles)
             ledger = self.folder.lay_out(
-                protocol_text=protocol.text, provenance=describe_run(plan, self.seeds, self.swap_seed),
+                protocol_text=protocol.text, provenance=provenance,
                 topology=plan.built.topology, positions_nm=plan.built.positions, conditions=plan.conditions,
-                ledger_header=ledger_header(plan, self.run_id))
+                ledger_header=header)
         workers = open_workers(self._walker_setup(), self.worker_count, self.comm, self.cores)
         frames = None
         try:
@@ -132,7 +136,7 @@ class Scheduler:
             system_xml=openmm.XmlSerializer.serialize(plan.system), umbrella_names=plan.umbrella_names,
             positions=plan.built.positions, box_vectors=plan.built.box_vectors, conditions=plan.conditions,
             coordinates=tuple(self.coordinate_list), masses=self.masses, timestep=protocol.timestep,
-            friction=protocol.friction, platform=plan.platform, seeds=tuple(self.seeds))
+            friction=protocol.friction, platform=plan.platform, seeds=tuple(self.seeds), starts=plan.starts)
 
     def _restore(self, workers, ledger, state):
         """Walkers, assignment and swap RNG at the last checkpoint; ledger cut back to it."""

@@ -25,6 +25,10 @@ def describe_plan(plan):
     lines.append(f"temperatures (K) {temperatures}")
     lines.append(f"conditions {len(plan.conditions)}, walkers {plan.n_walkers}, "
                  f"swaps {'every cycle (' + protocol.exchange.pairs + ' pairs)' if protocol.exchange else 'none'}")
+    if plan.source is not None:
+        lines.append(f"builds on {plan.source.folder}: its {len(plan.source.conditions)} conditions are not run "
+                     f"again; this run adds {len(plan.conditions)}, each walker starting from the stored "
+                     "configuration nearest to its condition, and the analysis pools both")
     cycle_ps = run.steps_per_cycle * protocol.timestep
     lines.append(f"cycles    {run.equilibration_cycles} equilibration + {run.production_cycles} production, "
                  f"{run.steps_per_cycle} steps ({cycle_ps:g} ps) each; "

@@ -128,11 +128,13 @@ def count_effective(w_n):
     return float(total**2 / np.sum(w_n**2))
 
 
-def count_crossing_walkers(inside_rt):
+def count_crossing_walkers(inside_rt, present_rt=None):
     """Walkers that have been both inside and outside a region.
 
     inside_rt : ndarray, shape (n_walkers, n_cycles), dtype bool
         Whether walker r's configuration lay in the region at cycle t.
+    present_rt : same shape, optional: the cycles each walker ran (default: all)
     """
     inside_rt = np.asarray(inside_rt, dtype=bool)
-    return int(np.sum(inside_rt.any(axis=1) & (~inside_rt).any(axis=1)))
+    present_rt = np.ones_like(inside_rt) if present_rt is None else np.asarray(present_rt, dtype=bool)
+    return int(np.sum((inside_rt & present_rt).any(axis=1) & (~inside_rt & present_rt).any(axis=1)))

@@ -34,6 +34,11 @@ class WalkerSetup:
     friction: float
     platform: object
     seeds: tuple
+    starts: tuple = ()        # per walker (positions, box_vectors) overriding the two above; empty: none
+
+    def start_of(self, r):
+        """Walker r's starting (positions, box_vectors), in nm."""
+        return self.starts[r] if self.starts else (self.positions, self.box_vectors)
 
 
 @dataclass(frozen=True)
@@ -57,8 +62,7 @@ class WalkerHost:
 
         system = openmm.XmlSerializer.deserialize(setup.system_xml)
         self.setup = setup
-        self.walkers = {r: Walker(r, system, setup.umbrella_names, setup.positions, setup.box_vectors,
-                                  setup.conditions[r], timestep=setup.timestep, friction=setup.friction,
+        self.walkers = {r: Walker(r, system, setup.umbrella_names, *setup.start_of(r), setup.conditions[r], timestep=setup.timestep, friction=setup.friction,
                                   platform=setup.platform, seed=setup.seeds[r]) for r in indices}
 
     def minimise(self):

@@ -71,6 +71,7 @@ run:
   checkpoint_every: 2.5 ps
   minimise: false
   retries: 3
+  builds_on: ../runs/first try
 basins:
   "wrapped one": {twist: [150 deg, -150 deg], r: [0 nm, 0.5 nm]}
   other: {twist: [-90 deg, 90 deg]}

@@ -20,7 +20,7 @@ from ..reweight import Reweighting
 from ..units import energy_in
 from .errorbars import compute_bootstrap_errors, uses_bootstrap
 from .estimates import compute_basin_results, compute_profiles, population_interval
-from .inputs import describe_run_folder, load_run
+from .inputs import describe_run_folder, load_run, load_study
 from .results import Analysis, BasinResult, ProfileResult, RunAbout, Uncertainty
 from .verdicts import Verdicts, compute_verdicts
 from .samples import (MBAR_COPIES, MBAR_SHARE, MIN_SAMPLES, Samples, basin_masks,
@@ -28,7 +28,7 @@ from .samples import (MBAR_COPIES, MBAR_SHARE, MIN_SAMPLES, Samples, basin_masks
                       thinning_stride, window_values)
 
 __all__ = ["Analysis", "BasinResult", "ProfileResult", "RunAbout", "Samples", "Uncertainty", "Verdicts", "analyse_run", "basin_masks",
-           "compute_sample_reduced_potentials", "condition_labels", "load_run", "population_interval",
+           "compute_sample_reduced_potentials", "condition_labels", "load_run", "load_study", "population_interval",
            "select_samples", "thinning_stride", "MBAR_COPIES", "MBAR_SHARE", "MIN_SAMPLES"]
 
 
@@ -36,7 +36,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
     """Analyse a run folder; see :class:`Analysis`. ``temperature`` in K; ``memory`` in
     bytes overrides the protocol's analysis.memory; ``uncertainty`` ('auto', 'asymptotic'
     or 'bootstrap') its analysis.uncertainty.method."""
-    protocol, data = load_run(folder)
+    protocol, data, own = load_study(folder)
     if uncertainty is not None:
         if uncertainty not in UNCERTAINTY_METHODS:
             raise AnalysisError(f"uncertainty must be one of {', '.join(UNCERTAINTY_METHODS)}; got {uncertainty!r}")
@@ -72,7 +72,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
     verdicts = compute_verdicts(mbar, u_n, samples, data, protocol, profiles, basins, asymptotic, uncertainty,
                                 scale)
     return Analysis(
-        folder=str(folder), temperature=temperature, energy_unit=unit, n_cycles=len(data.cycle_t),
+        folder=str(folder), temperature=temperature, energy_unit=unit, n_cycles=len(own.cycle_t),
         samples_k=N_k, thinning_k=samples.thinning_k, t0_k=samples.t0_k, g_k=samples.g_k,
         f_k=mbar.f_k, df_k=df_k, overlap=mbar.overlap,
         poor_pairs=tuple(poor),
@@ -86,7 +86,7 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
         umbrella_coordinates=tuple(a.coordinate for a in protocol.umbrella),
         angle_coordinates=data.angle_coordinates,
         walker_traces=data.condition_rt[:, data.production_t],
-        about=describe_run_folder(folder, protocol, data),
+        about=describe_run_folder(folder, protocol, own, data),
         basin_intervals={name: dict(intervals) for name, intervals in protocol.basins.items()})
 
 

@@ -80,29 +80,31 @@ def _walker_inefficiency(data, protocol, cycles):
     watched = ({a.coordinate for a in protocol.umbrella} | {c for b in protocol.basins.values() for c in b}
                | {b.coordinate for b in protocol.analysis.bins})
     names, periodic = list(data.coordinate_names), data.periodic
-    n_walkers = data.condition_rt.shape[0]
-    times = np.arange(cycles.size)
-    k_rt = data.condition_rt[:, cycles]
-    series_rt = None        # observable -> (walkers, cycles), sized from the first walker's rows
-    for r in range(n_walkers):
-        walker_t = np.full(cycles.size, r)
-        u_kt = compute_sample_reduced_potentials(data, protocol, data.conditions, walker_t, cycles)
-        row = [u_kt[k_rt[r], times]]
-        values_tc = data.values_rtc[r, cycles]
+    rows, held = [], []        # per walker: its observables (n_observables, n_cycles run) and conditions held
+    for r in range(data.condition_rt.shape[0]):
+        ran = cycles[data.condition_rt[r, cycles] >= 0]     # all cycles, but in a pooled study
+        if ran.size == 0:
+            continue
+        k_t = data.condition_rt[r, ran]
+        u_kt = compute_sample_reduced_potentials(data, protocol, data.conditions, np.full(ran.size, r), ran)
+        row = [u_kt[k_t, np.arange(ran.size)]]
+        values_tc = data.values_rtc[r, ran]
         for c, name in enumerate(names):
             if name in watched:
                 x = values_tc[:, c]
                 row += [np.cos(x), np.sin(x)] if periodic[c] else [x]
         row += [mask.astype(float) for mask in basin_masks(protocol, names, periodic, values_tc).values()]
-        if series_rt is None:
-            series_rt = np.empty((len(row), n_walkers, cycles.size))
-        series_rt[:, r] = row
+        rows.append(np.array(row))
+        held.append(k_t)
     g = 1.0
-    n_conditions = int(k_rt.max()) + 1
-    counts = np.bincount(k_rt.ravel(), minlength=n_conditions)
-    for s_rt in series_rt:
-        mean_k = np.bincount(k_rt.ravel(), weights=s_rt.ravel(), minlength=n_conditions) / np.maximum(counts, 1)
-        for s in s_rt - mean_k[k_rt]:
+    n_conditions = len(data.conditions)
+    k_all = np.concatenate(held)
+    counts = np.bincount(k_all, minlength=n_conditions)
+    for i in range(rows[0].shape[0]):
+        mean_k = np.bincount(k_all, weights=np.concatenate([row[i] for row in rows]),
+                             minlength=n_conditions) / np.maximum(counts, 1)
+        for row, k_t in zip(rows, held):
+            s = row[i] - mean_k[k_t]
             if np.ptp(s) > 1e-12 * max(1.0, np.abs(s).max()):
                 g = max(g, compute_statistical_inefficiency(s))
     return g

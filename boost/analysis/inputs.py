@@ -13,10 +13,24 @@ from ..protocol import parse_protocol
 from ..spec import differing_paths, parse_yaml, read_text
 from ..store import RunFolder, inspect_frames, protocol_hash, read_checkpoint_file, read_ledger, read_run_id
 from ..store.checkpoints import NEWEST
+from .pooling import cut_to_cycles, pool_runs
 from .results import RunAbout
 
 #: Top-level protocol sections that may be edited between a run and its analysis.
 EDITABLE_AFTER_RUN = ("basins", "analysis", "title")
+
+
+def load_study(folder):
+    """(protocol, data, own): the run's protocol, the data to analyse and the run's own
+    ledger data. ``data`` is ``own`` unless the run builds on earlier runs: then it pools
+    them all (boost.analysis.pooling), each earlier run cut to the cycles it held when
+    the next one was planned."""
+    protocol, own = load_run(folder)
+    runs, at = [(RunFolder(folder), own)], RunFolder(folder)
+    while (earlier := at.source()) is not None:
+        at, cycles = earlier
+        runs.append((at, cut_to_cycles(load_run(at.path)[1], cycles)))
+    return protocol, own if len(runs) == 1 else pool_runs(protocol, runs), own
 
 
 def load_run(folder):
@@ -78,8 +92,10 @@ def _report_frames(folder, data):
                           BoostWarning)
 
 
-def describe_run_folder(folder, protocol, data):
-    """What was run, for a report's header (RunAbout): the protocol and provenance.json."""
+def describe_run_folder(folder, protocol, data, pooled=None):
+    """What was run, for a report's header (RunAbout): the protocol and provenance.json.
+    ``data``: the run's own ledger data; ``pooled``: what the analysis pooled (default: ``data``)."""
+    pooled = data if pooled is None else pooled
     folder = RunFolder(folder)
     try:
         record = folder.read_provenance()
@@ -92,7 +108,7 @@ def describe_run_folder(folder, protocol, data):
     text = data.metadata.get("protocol_text")
     return RunAbout(
         title=protocol.title, system=_system_text(system),
-        conditions=len(data.conditions), walkers=int(data.condition_rt.shape[0]), cycle_ps=cycle_ps,
+        conditions=len(pooled.conditions), walkers=int(pooled.condition_rt.shape[0]), cycle_ps=cycle_ps,
         cycles_planned=run.n_cycles, cycles_done=len(data.cycle_t), production_ps=run.production_cycles * cycle_ps,
         platform=str(record.get("platform", "")), commit=str(git.get("commit") or ""),
         protocol_text=text if isinstance(text, str) else "")

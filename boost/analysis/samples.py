@@ -66,6 +66,25 @@ def gather(array_rt, picks):
     return np.concatenate([array_rt[walkers, cycles] for walkers, cycles in picks])
 
 
+def condition_walkers(data, k, cycles):
+    """(walker_t, held_t): of ``cycles``, those in which some walker held condition k
+    (all of them, but in a pooled study: see boost.analysis.pooling), and that walker."""
+    holds = data.condition_rt[:, cycles] == k
+    present = holds.any(axis=0)
+    return np.argmax(holds[:, present], axis=0), np.asarray(cycles)[present]
+
+
+def sample_positions(data, picks, cycles):
+    """Where each sample lies in its condition's share of ``cycles``, from 0 to 1 (in
+    condition order, as the picks): the forward/reverse estimates cut every condition's
+    series at the same fraction, also where the runs of a pooled study differ in length."""
+    out = []
+    for k, (_, picked) in enumerate(picks):
+        _, held = condition_walkers(data, k, cycles)
+        out.append(np.searchsorted(held, picked) / held.size)
+    return np.concatenate(out)
+
+
 def _decorrelation_series(data, k, walkers, cycles, protocol):
     """Observables whose correlation time bounds the sample spacing in condition k."""
     series = [compute_sample_reduced_potentials(data, protocol, [data.conditions[k]], walkers, cycles)[0]]
@@ -111,18 +130,18 @@ def select_samples(data, protocol, folder, memory):
         raise AnalysisError(f"{folder}: holds no production cycle yet.")
     picks, t0_k, g_k = [], [], []
     for k in range(len(data.conditions)):
-        walker_t = np.argmax(data.condition_rt[:, production] == k, axis=0)
-        series = _decorrelation_series(data, k, walker_t, production, protocol)
+        walker_t, held = condition_walkers(data, k, production)
+        series = _decorrelation_series(data, k, walker_t, held, protocol)
         # equilibration from the condition's own reduced potential (Chodera 2016); the
         # spacing from the slowest watched observable after it
         t0 = decorrelate(series[0]).t0
         g = max([1.0] + [compute_statistical_inefficiency(s[t0:]) for s in series if np.ptp(s[t0:]) > 0])
-        keep = t0 + np.unique(np.floor(np.arange(0, production.size - t0, g) + 0.5).astype(int))
-        keep = keep[keep < production.size]
+        keep = t0 + np.unique(np.floor(np.arange(0, held.size - t0, g) + 0.5).astype(int))
+        keep = keep[keep < held.size]
         if keep.size < MIN_SAMPLES:
             raise AnalysisError(f"{folder}: condition {k} has only {keep.size} uncorrelated samples "
                                 f"(g = {g:.1f} cycles): too few samples to analyse; run longer.")
-        picks.append((walker_t[keep], production[keep]))
+        picks.append((walker_t[keep], held[keep]))
         t0_k.append(t0)
         g_k.append(g)
     total = sum(len(w) for w, _ in picks)

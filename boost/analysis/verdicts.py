@@ -17,7 +17,7 @@ from ..convergence import Cumulative, compute_cumulative
 from ..diagnostics import neighbour_pairs_on_grid
 from ..verdict import TOO_FEW, Verdict, count_crossing_walkers, count_effective, judge
 from .errorbars import compute_statistics
-from .samples import basin_masks
+from .samples import basin_masks, sample_positions
 
 
 @dataclass(frozen=True, eq=False)
@@ -55,8 +55,7 @@ def compute_verdicts(mbar, u_n, samples, data, protocol, profiles, basins, asymp
         before the bootstrap replaced the errors (the same objects when it did not).
     """
     production = np.flatnonzero(data.production_t)
-    picked_cycles = np.concatenate([c for _, c in samples.picks])
-    position_n = np.searchsorted(production, picked_cycles) / production.size
+    position_n = sample_positions(data, samples.picks, production)
     mask_bn = basins[1] if basins else None
     bins = [b for _, b in profiles]
     error_s = _error_vector(len(samples.N_k), profiles, basins, scale)
@@ -129,9 +128,11 @@ def _cut_short_verdict(uncertainty, n_production):
 def _crossings(data, protocol, production):
     """Per basin, walkers whose production configurations were both inside and outside it."""
     values_rtc = data.values_rtc[:, production]
+    present_rt = data.condition_rt[:, production] >= 0
     flat = values_rtc.reshape(-1, values_rtc.shape[-1])
     masks = basin_masks(protocol, list(data.coordinate_names), data.periodic, flat)
-    return {name: count_crossing_walkers(mask.reshape(values_rtc.shape[:2])) for name, mask in masks.items()}
+    return {name: count_crossing_walkers(mask.reshape(values_rtc.shape[:2]), present_rt)
+            for name, mask in masks.items()}
 
 
 def _verdict(s, independent, cumulative, scale=1.0, **extra):

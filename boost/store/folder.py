@@ -136,6 +136,29 @@ def _quoted(name):
 
 
 
+def writer_of(path):
+    """Who is writing the run folder ``path`` now (the lock file's text), or None.
+
+    Reads only: the lock file is not made when absent, and a shared lock taken for an
+    instant tells whether a live process holds the writer's exclusive one.
+    """
+    import fcntl
+
+    try:
+        fd = os.open(Path(path) / LOCK, os.O_RDONLY)
+    except OSError:
+        return None
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except OSError:
+            return os.pread(fd, 4096, 0).decode(errors="replace").strip() or "another process"
+        fcntl.flock(fd, fcntl.LOCK_UN)
+        return None
+    finally:
+        os.close(fd)
+
+
 class FolderLock:
     """An exclusive lock on a run folder, held with flock for as long as a run writes.
 

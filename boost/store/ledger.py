@@ -261,6 +261,12 @@ def scan_ledger(folder):
         return n_cycles, first_bad, metadata
 
 
+def read_ledger_conditions(folder):
+    """The verified conditions table of a run folder's ledger (tuple of Condition)."""
+    with _open_verified(folder) as (_, _path, _metadata, conditions):
+        return conditions
+
+
 def read_ledger_metadata(folder):
     """The verified meta table of a run folder's ledger."""
     with _open_verified(folder) as (_, _path, metadata, _conditions):

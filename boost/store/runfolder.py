@@ -7,12 +7,13 @@ ask it; neither builds a path into a run folder itself.
 """
 
 import json
+import os
 from pathlib import Path
 
 from ..exceptions import RunFolderError
 from .checkpoints import choose_checkpoint, has_checkpoint
 from .folder import (CHECKPOINTS, FRAMES, IDENTITY, LEDGER, PROTOCOL, PROVENANCE, FolderLock, check_folder_for,
-                     claim_folder, write_atomically)
+                     claim_folder, read_run_id, write_atomically)
 from .frames import inspect_frames
 from .ledger import Ledger, read_ledger_metadata, scan_ledger
 
@@ -147,3 +148,38 @@ class RunFolder:
         except (KeyError, TypeError, ValueError):
             raise RunFolderError(f"{self.provenance}: is damaged (no platform recorded); it records the platform "
                                  "a resume must use: restore it, or start a new run folder.") from None
+
+    def original_protocol_place(self):
+        """Where the protocol file stood when the run started (relative paths in it are
+        relative to that folder): provenance's 'protocol_folder' and 'protocol_file' when
+        recorded (a relative one taken from the current folder, where ``boost run``
+        usually started), else the protocol copy itself."""
+        record = self.read_provenance() if self.provenance.is_file() else {}
+        place = self.protocol_copy
+        if record.get("protocol_file"):
+            place = Path(record["protocol_file"])
+            if record.get("protocol_folder"):
+                place = Path(record["protocol_folder"]) / place.name
+        return place
+
+    def describe_source(self, source, cycles):
+        """What the ledger header of a run that builds on ``source`` (a RunFolder whose
+        ledger holds ``cycles`` cycles) records of it: where it is, seen from this folder
+        and absolutely, its run id and how many of its cycles the analysis pools."""
+        absolute = Path(os.path.abspath(source.path))
+        return {"relative": os.path.relpath(absolute, os.path.abspath(self.path)), "absolute": str(absolute),
+                "run_id": read_run_id(source.path), "cycles": int(cycles)}
+
+    def source(self):
+        """(RunFolder, cycles) of the run this one builds on, as its ledger header records
+        it, or None. Looked for beside this folder first (a study moved as a whole), then
+        where it was; RunFolderError when neither holds the run with the recorded id."""
+        record = read_ledger_metadata(self.path).get("builds_on")
+        if not record:
+            return None
+        for candidate in (self.path / record["relative"], Path(record["absolute"])):
+            if (candidate / IDENTITY).is_file() and read_run_id(candidate) == record["run_id"]:
+                return RunFolder(candidate), int(record["cycles"])
+        raise RunFolderError(f"{self.path}: builds on the run {record['run_id']}, which is neither at "
+                             f"{self.path / record['relative']} nor at {record['absolute']}; put that run folder "
+                             "back to analyse this one.")

@@ -7,8 +7,13 @@ excluded. The loaded system's energy must equal the same parameters evaluated wi
 numpy in the format's own documented functional form.
 """
 
+import hashlib
+import itertools
 import math
+import os
 import random
+import subprocess
+import sys
 import textwrap
 
 import mdtraj
@@ -83,7 +88,7 @@ BUNDLED = system_spec.list_bundled_systems()
 def test_the_bundled_systems_are_the_expected_ones():
     names = {name for name, _, _ in BUNDLED}
     assert {"double-well", "double-well-low", "muller-brown", "alanine-vacuum",
-            "alanine-obc2"} <= names
+            "alanine-obc2", "alanine-tip3p", "agaa-tip3p"} <= names
     assert all(title for _, title, _ in BUNDLED)
 
 
@@ -144,6 +149,118 @@ def test_obc2_has_a_generalized_born_force():
           if isinstance(f, (openmm.GBSAOBCForce, openmm.CustomGBForce))]
     assert len(gb) == 1
     assert built.box_vectors is None
+
+
+# -- bundled peptides in water ----------------------------------------------------------
+# name: (sequence, phi and psi in degrees as the spec writes them, atoms of the peptide)
+# Atom counts from the residue formulas (common practice): ACE C2H3O 6 atoms, ALA (in a
+# chain) C3H5NO 10, GLY C2H3NO 7, NME CH4N 6; 6 + 10 + 6 = 22, 6 + 3 x 10 + 7 + 6 = 49.
+SOLVATED = {"alanine-tip3p": (["ACE", "ALA", "NME"], -80.0, 75.0, 22),
+            "agaa-tip3p": (["ACE", "ALA", "GLY", "ALA", "ALA", "NME"], -75.0, 145.0, 49)}
+WATER_PADDING, WATER_CUTOFF = 1.0, 0.9  # nm, as the two spec files write them
+
+
+@pytest.fixture(scope="module", params=sorted(SOLVATED))
+def solvated(request):
+    return request.param, _build(request.param, ".")
+
+
+def _peptide_and_water(built):
+    peptide = [atom.index for atom in built.topology.atoms() if atom.residue.name != "HOH"]
+    waters = [residue for residue in built.topology.residues() if residue.name == "HOH"]
+    return peptide, waters
+
+
+def test_solvated_peptides_are_the_peptide_at_its_angles_in_a_cube_of_water(solvated):
+    name, built = solvated
+    sequence, phi, psi, n_peptide = SOLVATED[name]
+    peptide, waters = _peptide_and_water(built)
+    assert peptide == list(range(n_peptide))  # the peptide first, then the water
+    assert [r.name for r in built.topology.residues()][:len(sequence)] == sequence
+    assert built.system.getNumParticles() == n_peptide + 3 * len(waters)
+    box = built.box_vectors
+    assert np.array_equal(box, box[0, 0] * np.eye(3))
+    # source: mdtraj's dihedral geometry (library): solvating moved no peptide atom
+    traj = mdtraj.Trajectory(built.positions[None], mdtraj.Topology.from_openmm(built.topology))
+    np.testing.assert_allclose(np.degrees(mdtraj.compute_phi(traj)[1][0]), phi, atol=1e-4)
+    np.testing.assert_allclose(np.degrees(mdtraj.compute_psi(traj)[1][0]), psi, atol=1e-4)
+    # the solute selection a solute-tempering protocol uses picks the peptide and nothing else
+    assert traj.topology.select("protein").tolist() == peptide
+
+
+def test_solvated_peptides_hold_water_at_the_density_of_liquid_water(solvated):
+    name, built = solvated
+    _, waters = _peptide_and_water(built)
+    # source: liquid water holds about 33.3 molecules per nm^3 near 300 K (0.997 g/cm^3,
+    # 18.015 g/mol; common practice, tests/REFERENCES.md, Liquid water). The peptide and the
+    # shell Modeller keeps free around it take some of the box, so the count lies below a
+    # full box, and never above it.
+    full_box = 33.3 * abs(np.linalg.det(built.box_vectors))
+    assert 0.8 * full_box < len(waters) <= full_box
+
+
+def test_solvated_peptides_stay_out_of_reach_of_their_periodic_copies(solvated):
+    # source: OpenMM's Modeller.addSolvent documentation (8.6): with a padding, no solute
+    # atom comes closer than the padding to any atom of a periodic copy of the solute.
+    # A padding longer than the cutoff keeps the peptide from feeling its own copies.
+    name, built = solvated
+    peptide, _ = _peptide_and_water(built)
+    xyz, box = built.positions[peptide], built.box_vectors
+    closest = min(np.linalg.norm(xyz[:, None] - xyz[None] - np.array(shift) @ box, axis=-1).min()
+                  for shift in itertools.product((-1, 0, 1), repeat=3) if any(shift))
+    assert closest >= WATER_PADDING > WATER_CUTOFF
+
+
+def test_solvated_peptides_match_the_direct_openmm_route(solvated):
+    # source: OpenMM's own app layer (library): the same peptide solvated by Modeller and
+    # parametrized by ForceField directly, with the settings the spec files write
+    name, built = solvated
+    peptide, waters = _peptide_and_water(built)
+    forcefield = app.ForceField("amber14-all.xml", "amber14/tip3p.xml")
+    modeller = app.Modeller(built.topology, built.positions * unit.nanometer)
+    modeller.delete([r for r in modeller.topology.residues() if r.name == "HOH"])
+    modeller.topology.setPeriodicBoxVectors(None)
+    modeller.addSolvent(forcefield, model="tip3p", padding=WATER_PADDING * unit.nanometer)
+    positions = np.array(modeller.getPositions().value_in_unit(unit.nanometer))
+    assert np.array_equal(built.positions, positions)
+    box = modeller.topology.getPeriodicBoxVectors().value_in_unit(unit.nanometer)
+    np.testing.assert_array_equal(built.box_vectors, np.array([list(v) for v in box]))
+    direct = forcefield.createSystem(modeller.topology, nonbondedMethod=app.PME,
+                                     nonbondedCutoff=WATER_CUTOFF * unit.nanometer, constraints=app.HBonds)
+    assert _energy(built.system, built.positions) == pytest.approx(_energy(direct, positions), rel=1e-12)
+    # bonds to hydrogen in the peptide, and three per rigid water (common practice)
+    atoms = list(built.topology.atoms())
+    n_hydrogens = sum(atoms[i].element.symbol == "H" for i in peptide)
+    assert built.system.getNumConstraints() == direct.getNumConstraints() == n_hydrogens + 3 * len(waters)
+    nonbonded = next(f for f in built.system.getForces() if isinstance(f, openmm.NonbondedForce))
+    assert nonbonded.getNonbondedMethod() == openmm.NonbondedForce.PME
+    assert nonbonded.getCutoffDistance().value_in_unit(unit.nanometer) == pytest.approx(WATER_CUTOFF)
+
+
+_DIGEST = """\
+import hashlib, sys
+from boost import systems
+from boost.spec import Node
+from boost.system_spec import read_system_spec
+built = systems.build_system(read_system_spec(Node(sys.argv[1], "protocol.yaml", "system"), "."))
+print(hashlib.sha256(built.positions.tobytes() + built.box_vectors.tobytes()).hexdigest())
+"""
+
+
+def test_solvated_peptides_build_the_same_atoms_every_time(solvated):
+    # in this process with another random state, and in a fresh one with another hash seed
+    name, built = solvated
+    random.seed(99)
+    again = _build(name, ".")
+    np.testing.assert_array_equal(again.positions, built.positions)
+    np.testing.assert_array_equal(again.box_vectors, built.box_vectors)
+    assert [a.name for a in again.topology.atoms()] == [a.name for a in built.topology.atoms()]
+    environment = {**os.environ, "PYTHONHASHSEED": "12345",
+                   "PYTHONPATH": os.pathsep.join(filter(None, [os.path.dirname(os.path.dirname(systems.__file__)),
+                                                               os.environ.get("PYTHONPATH")]))}
+    fresh = subprocess.run([sys.executable, "-c", _DIGEST, name], capture_output=True, text=True,
+                           env=environment, timeout=300, check=True).stdout.split()[-1]
+    assert fresh == hashlib.sha256(built.positions.tobytes() + built.box_vectors.tobytes()).hexdigest()
 
 
 def test_double_well_energy_at_the_barrier_top():

@@ -286,7 +286,14 @@ def propose(protocol, source, targets, output, *, refine=False):
     run, production_lines = _production(protocol, run_protocol, data, analysis, targets,
                                         _weakest_pair(run_protocol, analysis, what, targets))
     new = replace(new, run=run)
-    lines += production_lines + _wall_time(new, source)
+    if refine and run.production_cycles == run_protocol.run.production_cycles:
+        # the refined protocol adds to the run instead of repeating it (boost.lineage)
+        where = os.path.relpath(os.path.abspath(source.folder), os.path.abspath(Path(output).parent))
+        new = replace(new, run=replace(run, builds_on=where))
+        lines.append(f"builds on {source.folder} (run.builds_on): only the added conditions run, and the analysis "
+                     "pools them with its samples")
+    kept = len(run_protocol.temperatures) * run_protocol.n_windows if new.run.builds_on else 0
+    lines += production_lines + _wall_time(new, source, kept)
     header = _header(source, what, targets, refine, pairs)
     text = header + _rebased_dump(new, protocol, Path(output))
     planned = parse_protocol(text, Path(output))
@@ -521,11 +528,13 @@ def _production(protocol, run_protocol, data, analysis, targets, weakest):
     return replace(run, production_cycles=cycles), lines
 
 
-def _wall_time(protocol, source):
+def _wall_time(protocol, source, kept=0):
+    """The proposed run's wall time; ``kept``: conditions of the run it builds on, not run again."""
     rate, how = source.walker_steps_per_second, source.speed_from
     if not rate > 0:
         rate, how = _measure_here(protocol)
-    steps = len(protocol.temperatures) * protocol.n_windows * protocol.run.n_cycles * protocol.run.steps_per_cycle
+    conditions = len(protocol.temperatures) * protocol.n_windows - kept
+    steps = conditions * protocol.run.n_cycles * protocol.run.steps_per_cycle
     return [f"wall time on this machine: about {_duration(steps / rate)} for {steps} walker steps at "
             f"{rate:.4g} walker steps/s (measured from {how})"]
 

@@ -423,7 +423,8 @@ def _plot_windows(analysis, out, plt):
 def _plot_swaps(analysis, out, plt):
     fig, ax = plt.subplots(figsize=(7, 4))
     for r, trace in enumerate(analysis.walker_traces):
-        ax.step(np.arange(len(trace)), trace, where="post", lw=0.8, label=f"walker {r}")
+        held = np.where(trace >= 0, trace, np.nan)          # -1: the walker's run had ended (pooled study)
+        ax.step(np.arange(len(trace)), held, where="post", lw=0.8, label=f"walker {r}")
     ax.set_xlabel("production cycle")
     ax.set_ylabel("condition held")
     ax.set_title("walker traces through the ladder")
@@ -432,11 +433,9 @@ def _plot_swaps(analysis, out, plt):
     fig.tight_layout()
     fig.savefig(out / "walker-traces.png", dpi=120)
     plt.close(fig)
-    acceptance = analysis.swaps.acceptance_ij
-    n = len(acceptance)
-    neighbours = [acceptance[k, k + 1] for k in range(n - 1)]
+    pairs = [(i, j, rate) for i, j, rate, *_ in analysis.verdicts.acceptance]
     fig, ax = plt.subplots(figsize=(6, 4))
-    ax.bar([f"{k}–{k + 1}" for k in range(n - 1)], neighbours, color="tab:green")
+    ax.bar([f"{i}–{j}" for i, j, _ in pairs], [rate for *_, rate in pairs], color="tab:green")
     ax.set_xlabel("neighbouring conditions")
     ax.set_ylabel("swap acceptance (fraction)")
     ax.set_ylim(0, 1)

@@ -211,3 +211,34 @@ def test_the_command_line_says_one_line_and_exits_2(study, tmp_path):
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1 and "run.builds_on" in lines[0] and "Traceback" not in result.stderr
     assert not (tmp_path / "next").exists()
+
+
+def test_rungs_added_to_a_temperature_ladder_pool_with_it(tmp_path):
+    from conftest import SHORT_LADDER, exact_high_well_left_population
+
+    first = SHORT_LADDER.replace("{lowest: 300 K, highest: 1500 K, count: 4}", "[300 K, 600 K, 1500 K]") \
+        .replace("production: 300 ps", "production: 200 ps")
+    _write(tmp_path, "first.yaml", first)
+    run_protocol(load_protocol(tmp_path / "first.yaml"), tmp_path / "first", progress=False)
+    second = first.replace("[300 K, 600 K, 1500 K]", "[300 K, 420 K, 600 K, 950 K, 1500 K]") \
+        .replace("seed: 1", "seed: 7").replace("production: 200 ps", "production: 200 ps\n  builds_on: first")
+    run_protocol(_write(tmp_path, "second.yaml", second), tmp_path / "second", progress=False)
+    analysis = analyse_run(tmp_path / "second")
+    assert len(analysis.samples_k) == 5
+    # each run swapped along its own ladder: 0-2, 2-4 in the first, 1-3 in the second
+    assert [(i, j) for i, j, *_ in analysis.verdicts.acceptance] == [(0, 2), (1, 3), (2, 4)]
+    assert all(attempts > 0 for *_, attempts, _ in analysis.verdicts.acceptance)
+    left = analysis.basins.names.index("left")
+    error = analysis.basins.populations[left] - exact_high_well_left_population()   # source: exact, quadrature
+    assert abs(error) < 3 * analysis.basins.d_populations[left] and abs(error) < 0.1
+
+
+def test_refine_writes_a_protocol_that_builds_on_the_run(study, tmp_path):
+    from boost.proposal import Targets, propose, read_source
+
+    root, *_ = study
+    protocol = load_protocol(root / "first.yaml")
+    proposal = propose(protocol, read_source(root / "first"), Targets(), tmp_path / "refined.yaml", refine=True)
+    refined = parse_protocol(proposal.text, tmp_path / "refined.yaml")
+    assert refined.source_folder.resolve() == (root / "first").resolve()
+    assert len(refined.umbrella[0].centres) > len(OUTER)          # the gap gets windows

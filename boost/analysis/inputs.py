@@ -13,7 +13,7 @@ from ..protocol import parse_protocol
 from ..spec import differing_paths, parse_yaml, read_text
 from ..store import RunFolder, inspect_frames, protocol_hash, read_checkpoint_file, read_ledger, read_run_id
 from ..store.checkpoints import NEWEST
-from .pooling import cut_to_cycles, pool_runs
+from .pooling import pool_runs
 from .results import RunAbout
 
 #: Top-level protocol sections that may be edited between a run and its analysis.
@@ -23,13 +23,13 @@ EDITABLE_AFTER_RUN = ("basins", "analysis", "title")
 def load_study(folder):
     """(protocol, data, own): the run's protocol, the data to analyse and the run's own
     ledger data. ``data`` is ``own`` unless the run builds on earlier runs: then it pools
-    them all (boost.analysis.pooling), each earlier run cut to the cycles it held when
-    the next one was planned."""
+    them all (boost.analysis.pooling), each with every cycle it holds now (an earlier
+    run extended after the later one started adds its new cycles)."""
     protocol, own = load_run(folder)
     runs, at = [(RunFolder(folder), own)], RunFolder(folder)
     while (earlier := at.source()) is not None:
-        at, cycles = earlier
-        runs.append((at, cut_to_cycles(load_run(at.path)[1], cycles)))
+        at, _ = earlier
+        runs.append((at, load_run(at.path)[1]))
     return protocol, own if len(runs) == 1 else pool_runs(protocol, runs), own
 
 

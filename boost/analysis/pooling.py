@@ -18,20 +18,6 @@ from ..store import LedgerData
 ABSENT = -1
 
 
-def cut_to_cycles(data, n_cycles):
-    """``data`` with only its first ``n_cycles`` cycles (the part a later run pooled with)."""
-    if n_cycles >= len(data.cycle_t):
-        return data
-    keep = data.swaps[:, 0] < n_cycles if data.swaps.size else slice(None)
-    return LedgerData(
-        conditions=data.conditions, coordinate_names=data.coordinate_names, periodic=data.periodic,
-        angle_coordinates=data.angle_coordinates, umbrella_coordinates=data.umbrella_coordinates,
-        cycle_t=data.cycle_t[:n_cycles], time_t=data.time_t[:n_cycles], production_t=data.production_t[:n_cycles],
-        condition_rt=data.condition_rt[:, :n_cycles], potential_rt=data.potential_rt[:, :n_cycles],
-        volume_rt=data.volume_rt[:, :n_cycles], values_rtc=data.values_rtc[:, :n_cycles],
-        u_krt=data.u_krt[:, :, :n_cycles], swaps=data.swaps[keep], metadata=data.metadata)
-
-
 def pool_runs(protocol, runs):
     """One LedgerData for the runs of a study.
 

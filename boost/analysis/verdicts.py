@@ -183,7 +183,7 @@ def _acceptance_verdicts(data, protocol, production):
     ladder_shape = (len(protocol.temperatures), *[len(a.centres) for a in protocol.umbrella])
     rows = data.swaps[np.isin(data.swaps[:, 0], cycles)]
     out = []
-    for i, j in neighbour_pairs_on_grid(ladder_shape):
+    for i, j in _judged_pairs(protocol, ladder_shape, rows):
         pair = rows[(rows[:, 1] == i) & (rows[:, 2] == j)]
         halves = [pair[pair[:, 0] < middle], pair[pair[:, 0] >= middle]]
         estimates = [_rate(h[:, 3].sum(), h[:, 4].sum()) for h in halves]
@@ -192,6 +192,15 @@ def _acceptance_verdicts(data, protocol, production):
                         d_first=estimates[0][1], second=estimates[1][0], d_second=estimates[1][1])
         out.append((i, j, accepted / attempts if attempts else np.nan, int(attempts), verdict))
     return tuple(out)
+
+
+def _judged_pairs(protocol, ladder_shape, rows):
+    """Pairs whose acceptance is judged: neighbours on the ladder; with swaps between
+    neighbours only, the pairs attempted (the same, but in a pooled study, where each run
+    swapped along its own ladder: boost.analysis.pooling)."""
+    if protocol.exchange.pairs == "any":
+        return neighbour_pairs_on_grid(ladder_shape)
+    return sorted({(int(i), int(j)) for i, j in rows[:, 1:3]})
 
 
 def _rate(attempts, accepted):

@@ -165,7 +165,7 @@ class RunFolder:
     def describe_source(self, source, cycles):
         """What the ledger header of a run that builds on ``source`` (a RunFolder whose
         ledger holds ``cycles`` cycles) records of it: where it is, seen from this folder
-        and absolutely, its run id and how many of its cycles the analysis pools."""
+        and absolutely, its run id and how many cycles it held then."""
         absolute = Path(os.path.abspath(source.path))
         return {"relative": os.path.relpath(absolute, os.path.abspath(self.path)), "absolute": str(absolute),
                 "run_id": read_run_id(source.path), "cycles": int(cycles)}

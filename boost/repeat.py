@@ -26,6 +26,7 @@ import numpy as np
 from .exceptions import InputError, RunFolderError, warnings_to_log
 from .limits import MAX_SPEC_BYTES
 from .protocol import PlatformSettings, parse_protocol
+from .protocol_dump import dump_protocol
 from .provenance import read_protocol_at_commit
 from .spec import read_text
 from .store import LEDGER, PROTOCOL, RunFolder, write_atomically
@@ -93,6 +94,7 @@ class RepeatPlan:
     original: Path | None          # run folder to compare with, or None
     folder: Path                   # where the repeat runs
     platform: PlatformSettings | None   # the original's platform; None: the protocol's
+    earlier: "RepeatPlan | None" = None  # the repeat of the run this one builds on (run.builds_on), made first
 
 
 @dataclass(frozen=True)
@@ -101,6 +103,7 @@ class RepeatOutcome:
     temperature: float             # K, of both analyses
     headlines: tuple               # the repeat's Headline numbers
     comparison: Comparison | None  # None when there is no original to compare with
+    earlier: "RepeatOutcome | None" = None   # the repeat of the run this one builds on
 
 
 # -- planning: every check before anything is written -----------------------------------
@@ -147,7 +150,22 @@ def plan_repeat(source, *, folder=None, revision=None, against=None):
     folder = Path(folder) if folder is not None else _default_folder(source, kind, commit, original)
     _check_fresh(folder)
     return RepeatPlan(source=source, kind=kind, protocol=protocol, commit=commit, original=original,
-                      folder=folder, platform=_recorded_platform(original, protocol) if original else None)
+                      folder=folder, platform=_recorded_platform(original, protocol) if original else None,
+                      earlier=_plan_earlier(protocol, original, folder))
+
+
+def _plan_earlier(protocol, original, folder):
+    """The repeat of the run ``protocol`` builds on, into FOLDER-earlier: the chain is
+    rebuilt run by run, each compared with its original. The earlier run is the one the
+    original's ledger records, else the one the protocol names."""
+    if protocol.run.builds_on is None:
+        return None
+    found = RunFolder(original).source() if original is not None else None
+    earlier = found[0].path if found else protocol.source_folder
+    if not (earlier / LEDGER).is_file():
+        raise RunFolderError(f"{protocol.path}: run.builds_on names {earlier}, which is not a run folder; a repeat "
+                             "rebuilds the run it builds on from that folder's protocol.")
+    return plan_repeat(earlier, folder=folder.with_name(folder.name + "-earlier"))
 
 
 def _protocol_of_run(run):
@@ -223,6 +241,10 @@ def run_repeat(plan, *, progress=True):
     from .scheduler import run_protocol
 
     protocol = plan.protocol
+    earlier = run_repeat(plan.earlier, progress=progress) if plan.earlier else None
+    if earlier is not None:             # build on the repeat of the earlier run, not on the original
+        run = replace(protocol.run, builds_on=str(plan.earlier.folder.resolve()))
+        protocol = parse_protocol(dump_protocol(replace(protocol, run=run)), protocol.path)
     settings = {"temperature": protocol.temperature, "energy_unit": protocol.analysis.energy_unit}
     original = _analyse(plan.original, "original", settings) if plan.original else None
     run_protocol(protocol, plan.folder, platform=plan.platform, progress=progress)
@@ -230,7 +252,7 @@ def run_repeat(plan, *, progress=True):
     comparison = compare_analyses(original, repeat) if original is not None else None
     _write_record(plan, comparison)
     return RepeatOutcome(plan=plan, temperature=protocol.temperature, headlines=headline_numbers(repeat),
-                         comparison=comparison)
+                         comparison=comparison, earlier=earlier)
 
 
 def _analyse(folder, role, settings):
@@ -357,8 +379,11 @@ def format_outcome(outcome):
     """The terminal report of a repeat: the comparison table, or the repeat's numbers alone."""
     plan = outcome.plan
     at = f" as committed at {plan.commit[:12]}" if plan.commit else ""
-    lines = [f"repeat of {plan.source} ({plan.kind}{at}) in {plan.folder}, "
-             f"numbers at {outcome.temperature:.2f} K"]
+    lines = [format_outcome(outcome.earlier), ""] if outcome.earlier is not None else []
+    lines += [f"repeat of {plan.source} ({plan.kind}{at}) in {plan.folder}, "
+              f"numbers at {outcome.temperature:.2f} K"]
+    if plan.earlier is not None:
+        lines.append(f"built on the repeat of {plan.earlier.source} in {plan.earlier.folder}")
     if outcome.comparison is None:
         rows = [(h.quantity, h.unit, _number(h.value), _number(h.error)) for h in outcome.headlines
                 if not math.isnan(h.value)]

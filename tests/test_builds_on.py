@@ -242,3 +242,18 @@ def test_refine_writes_a_protocol_that_builds_on_the_run(study, tmp_path):
     refined = parse_protocol(proposal.text, tmp_path / "refined.yaml")
     assert refined.source_folder.resolve() == (root / "first").resolve()
     assert len(refined.umbrella[0].centres) > len(OUTER)          # the gap gets windows
+
+
+def test_repeat_rebuilds_the_chain_bit_for_bit(study, tmp_path):
+    from boost.repeat import format_outcome, plan_repeat, run_repeat
+
+    root, *_ = study
+    plan = plan_repeat(root / "second", folder=tmp_path / "again")
+    assert plan.earlier is not None and plan.earlier.folder == tmp_path / "again-earlier"
+    outcome = run_repeat(plan, progress=False)
+    # Reference platform, same seeds: each run of the chain and the pooled numbers come out bit for bit
+    for result in (outcome, outcome.earlier):
+        assert result.comparison.count("identical") == len(result.comparison.checks) > 0
+    assert read_ledger(tmp_path / "again", reduced=False).metadata["builds_on"]["absolute"] == \
+        str((tmp_path / "again-earlier").resolve())
+    assert "built on the repeat of" in format_outcome(outcome)

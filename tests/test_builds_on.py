@@ -196,6 +196,10 @@ def test_added_conditions_that_are_no_ladder_are_refused_for_swaps(tmp_path):
     more = _protocol(OUTER[:4], production="4 ps", builds_on="first", temperatures="[300 K, 330 K, 363 K]",
                      exchange="{pairs: adjacent}")
     _refused(tmp_path, more, "do not form a ladder of their own")
+    # a temperature-exchange run with another system under it
+    other = _protocol(OUTER[:3], production="4 ps", builds_on="first", temperatures="[300 K, 330 K, 363 K]",
+                      exchange="{pairs: adjacent}").replace("barrier: 40 kJ/mol", "barrier: 20 kJ/mol")
+    _refused(tmp_path, other, r"its system differs from this protocol's \(system\)")
 
 
 def test_an_empty_source_path_is_refused_when_the_protocol_loads(tmp_path):

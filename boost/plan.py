@@ -3,12 +3,13 @@ every input checked and nothing written. ``boost check`` stops here; ``boost run
 the plan to the scheduler."""
 
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from .conditions import build_conditions
 from .engine import PlatformChoice, choose_platform, prepare_system
 from .protocol import resolve_coordinates
 from .provenance import describe_environment, describe_git
+from .solute_spec import resolve_solute_atoms
 from .store import dcd_frame_bytes
 from .systems import build_system
 from .workers import rank_walkers
@@ -25,6 +26,7 @@ class Plan:
     system: object
     umbrella_names: tuple
     platform: object
+    solute: object = None   # boost.solute_scaling.SoluteScaledSystem without its system, or None
 
     @property
     def n_walkers(self):
@@ -42,7 +44,8 @@ def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, c
     built = build_system(protocol.system)
     coordinates = resolve_coordinates(protocol, built.topology)
     conditions = build_conditions(protocol)
-    system, umbrella_names = prepare_system(built, protocol, coordinates)
+    solute, scaled_built = _solute_scaled(protocol, built)
+    system, umbrella_names = prepare_system(scaled_built, protocol, coordinates)
     settings = platform or protocol.platform
     if settings.name == "auto" and not probe:
         choice = PlatformChoice("auto", {})
@@ -51,7 +54,21 @@ def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, c
         choice = choose_platform(settings, system, built.positions, timestep=protocol.timestep,
                                  n_walkers=n_walkers, cores=cores,
                                  workers=settings.workers if workers is None else workers)
-    return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice)
+    return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice, solute)
+
+
+def _solute_scaled(protocol, built):
+    """(solute record, built system whose System is solute-scaled), or (None, built) without a solute.
+
+    Scaled before restraints, umbrellas and a barostat are added: those stay unscaled.
+    """
+    if protocol.solute is None:
+        return None, built
+    from .solute_scaling import build_solute_scaled_system
+
+    atoms = resolve_solute_atoms(protocol.solute, built.topology)
+    scaled = build_solute_scaled_system(built.system, atoms, place=protocol.solute.place, whole_system=True)
+    return replace(scaled, system=None), replace(built, system=scaled.system)
 
 
 def describe_run(plan, seeds, swap_seed):

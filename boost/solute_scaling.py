@@ -82,6 +82,9 @@ class SoluteScaledSystem:
         zeros when the system has none.
     nonbonded_group : int
         Force group of the NonbondedForce (where the dispersion correction is counted).
+
+    A run's walkers get a copy with ``system`` None (their System travels as XML):
+    :func:`compute_solute_parts` reads only the other fields.
     """
 
     system: openmm.System

@@ -75,6 +75,8 @@ def _read_scales(node):
         if scales[0] != 1.0:
             items[0].fail("1 (the first rung is the physical potential, which the analysis reports)")
     else:
+        if not isinstance(node.value, dict):
+            node.fail("a list of solute scales [1, ...] or {lowest, count}")
         node.mapping(allowed=("lowest", "count"), required=("lowest", "count"))
         lowest = node.get("lowest")
         value = check_solute_scale(lowest.number(), place=lowest.place)
@@ -95,6 +97,8 @@ def _read_effective_temperatures(node, temperature):
                           "the first rung is the physical potential, which the analysis reports")
         ladder[0] = temperature
     else:
+        if not isinstance(node.value, dict):
+            node.fail("a list of temperatures starting at the protocol's or {highest, count}")
         node.mapping(allowed=("highest", "count"), required=("highest", "count"))
         highest = node.get("highest").quantity("temperature", positive=True)
         if not highest > temperature:

@@ -286,6 +286,8 @@ BAD_SOLUTE = [
     ("{atoms: [0, 1], scales: [1, 0.5]}", r"solute\.atoms must be a non-empty text"),
     ("{atoms: all, scale: [1, 0.5]}", r"solute\.scale is not a known key\. Did you mean 'scales'\?"),
     ("[1, 0.5]", r"protocol\.yaml: solute must be a mapping"),
+    ("{atoms: all, scales: 0.5}", r"solute\.scales must be a list of solute scales \[1, \.\.\.\] or \{lowest, count\}"),
+    ("{atoms: all, effective_temperatures: 600 K}", r"solute\.effective_temperatures must be a list of temperatures"),
 ]
 
 
@@ -339,3 +341,11 @@ def test_the_whole_molecule_in_vacuum_may_be_the_solute(write_protocol):
     text = SOLVATED.replace("  water_box: {padding: 0.5 nm}\n  nonbonded: {method: pme, cutoff: 0.6 nm}\n", "")
     plan = make_plan(load_protocol(write_protocol(text + "solute: {atoms: all, scales: [1, 0.5]}\n")), probe=False)
     assert plan.solute.solute == tuple(range(22)) and plan.n_walkers == 2
+
+
+def test_propose_says_it_does_not_plan_solute_ladders(write_protocol):
+    from boost.proposal import what_to_plan
+
+    protocol = load_protocol(write_protocol(solute("{atoms: all, scales: [1, 0.5]}")))
+    with pytest.raises(ProtocolError, match=r"protocol\.yaml: solute has a ladder of solute scales; boost propose plans"):
+        what_to_plan(protocol)

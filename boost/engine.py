@@ -3,6 +3,9 @@
 The umbrella forces live in their own force group (:data:`BIAS_GROUP`), so the energy a
 walker reports excludes them: the reduced potential of every condition is then computed
 from that energy and the coordinate values (boost.conditions), with no re-evaluation.
+With solute scaling a walker reports the physical energy and the two parts that the
+solute scale multiplies (boost.solute_scaling), measured in one context whose own solute
+scale is that of the condition it holds.
 """
 
 import time
@@ -16,6 +19,7 @@ from openmm import unit
 from .bias import build_umbrella_force, build_flat_bottom_force, centre_parameter, spring_parameter
 from .cores import pinned, usable_cores
 from .exceptions import ProtocolError, SimulationError
+from .solute_scaling import compute_solute_parts, set_solute_scale
 
 BIAS_GROUP = 31
 PHYSICAL_GROUPS = set(range(31))
@@ -154,10 +158,11 @@ def shares_random_stream(platform_name, system):
 class Observation:
     """What a walker reports after propagating: energies without umbrellas."""
 
-    potential: float            # kJ/mol, flat-bottom restraints included, umbrellas excluded
+    potential: float            # kJ/mol at λ = 1, flat-bottom restraints included, umbrellas excluded
     positions: np.ndarray       # (n_atoms, 3) nm
     box_vectors: np.ndarray | None  # (3, 3) nm
     volume: float | None        # nm³
+    solute: tuple | None = None     # (E_cross, E_inner) kJ/mol with solute scaling (boost.solute_parts)
 
 
 class Walker:
@@ -175,12 +180,16 @@ class Walker:
     friction : float, 1/ps
     platform : PlatformChoice
     seed : int, positive
+    solute : boost.solute_scaling.SoluteScaledSystem or None
+        When ``system`` is solute-scaled: its tail coefficients and nonbonded group (its
+        ``system`` field is not used).
     """
 
     def __init__(self, index, system, umbrella_names, positions, box_vectors, condition, *,
-                 timestep, friction, platform, seed):
+                 timestep, friction, platform, seed, solute=None):
         self.index = index
         self.umbrella_names = umbrella_names
+        self.solute = solute
         self.uses_pbc = system.usesPeriodicBoundaryConditions()
         barostats = [f for f in system.getForces() if isinstance(f, BAROSTATS)]
         self.barostat_temperatures = sorted({type(f).Temperature() for f in barostats})   # parameter names
@@ -214,7 +223,7 @@ class Walker:
             self._state = self.context.createCheckpoint()
 
     def apply(self, condition):
-        """Move this walker to ``condition``: umbrella parameters and temperature.
+        """Move this walker to ``condition``: umbrella parameters, solute scale and temperature.
 
         On a temperature change velocities are rescaled by sqrt(T_new/T_old) so the walker
         carries on in equilibrium at the new temperature (common practice).
@@ -226,6 +235,8 @@ class Walker:
         for name, centre, spring in zip(self.umbrella_names, condition.centres, condition.springs):
             self.context.setParameter(centre_parameter(name), centre)
             self.context.setParameter(spring_parameter(name), spring)
+        if self.solute is not None:
+            set_solute_scale(self.context, condition.solute_scale)
         old = self.condition
         # plain numbers in OpenMM's own units (nm/ps, K): the same values without unit objects
         if old is not None and old.temperature != condition.temperature:
@@ -258,14 +269,23 @@ class Walker:
         # Without umbrellas every group is physical; asking for all of them spares OpenMM
         # a recomputation of the forces at the next step.
         groups = PHYSICAL_GROUPS if self.umbrella_names else -1
-        state = self.context.getState(getEnergy=True, getPositions=True, groups=groups)
+        solute = None
+        if self.solute is None:
+            state = self.context.getState(getEnergy=True, getPositions=True, groups=groups)
+            potential = state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole)
+        else:
+            # Three energies at other solute scales; the parameters come back bit for bit and
+            # no random number is drawn, so the walker's trajectory and its place in a shared
+            # random stream are those it would have without them (tests/test_solute_run.py).
+            parts = compute_solute_parts(self.solute, self.context, groups=PHYSICAL_GROUPS)
+            potential, solute = float(parts.sum()), (float(parts[1]), float(parts[2]))
+            state = self.context.getState(getPositions=True)
         positions = state.getPositions(asNumpy=True).value_in_unit(unit.nanometer)
         box = volume = None
         if self.uses_pbc:
             box = state.getPeriodicBoxVectors(asNumpy=True).value_in_unit(unit.nanometer)
             volume = float(np.linalg.det(box))
-        potential = state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole)
-        return Observation(potential, np.asarray(positions), box, volume)
+        return Observation(potential, np.asarray(positions), box, volume, solute)
 
     def checkpoint(self):
         """OpenMM checkpoint bytes (positions, velocities, box, parameters, RNG states)."""

@@ -15,7 +15,7 @@ from .exchange import any_pairs_proposals
 #: Windows along one umbrella axis, temperatures of a ladder, PMF bins along a coordinate:
 #: written with ``count`` or as a list (a window every 0.036 deg around a dihedral).
 MAX_COUNT = 10_000
-#: Conditions (temperatures × windows). MBAR's matrices over pairs of conditions (overlap,
+#: Conditions (temperatures × solute scales × windows). MBAR's matrices over pairs of conditions (overlap,
 #: covariance of the free energies) take 8 bytes × conditions², 80 GB at this size.
 MAX_CONDITIONS = 100_000
 #: Walkers (one per condition today, so this is the bound a protocol meets first). Each is an
@@ -35,30 +35,34 @@ MAX_TITLE_LENGTH = 200
 MAX_SPEC_BYTES = 4 * 2**20
 
 
-def check_conditions(node, n_temperatures, window_counts):
+def check_conditions(node, n_temperatures, window_counts, *, n_scales=1):
     """Refuse more conditions or walkers than the bounds, from the counts alone.
 
     Parameters
     ----------
     node : boost.spec.Node
-        Where the windows (or, without windows, the temperatures) are written.
+        Where the windows (or, without windows, the solute scales or the temperatures) are written.
     n_temperatures : int
     window_counts : sequence of int
         Windows along each umbrella axis.
+    n_scales : int
+        Rungs of the solute ladder (1 without one).
 
     Returns
     -------
     int
         The number of conditions (= walkers).
     """
-    n_conditions = n_temperatures * math.prod(window_counts)
-    product = " × ".join(str(count) for count in (n_temperatures, *window_counts))
+    n_conditions = n_temperatures * n_scales * math.prod(window_counts)
+    counts = (n_temperatures, *([n_scales] if n_scales > 1 else []), *window_counts)
+    product = " × ".join(str(count) for count in counts)
+    what = "temperatures × solute scales × windows" if n_scales > 1 else "temperatures × windows"
     if n_conditions > MAX_CONDITIONS:
-        raise ProtocolError(f"{node.place} must make at most {MAX_CONDITIONS} conditions (temperatures × "
-                            f"windows). Got {product} = {n_conditions} instead.")
+        raise ProtocolError(f"{node.place} must make at most {MAX_CONDITIONS} conditions ({what}). "
+                            f"Got {product} = {n_conditions} instead.")
     if n_conditions > MAX_WALKERS:
         raise ProtocolError(f"{node.place} must make at most {MAX_WALKERS} walkers (one per condition: "
-                            f"temperatures × windows). Got {product} = {n_conditions} instead.")
+                            f"{what}). Got {product} = {n_conditions} instead.")
     return n_conditions
 
 

@@ -18,7 +18,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from .conditions import build_conditions, compute_bias_energies, index_of_condition, ladder_of
+from .conditions import build_conditions, compute_bias_energies, index_of_condition, ladder_of, ladder_shape
 from .exceptions import RunFolderError
 from .protocol import parse_protocol
 from .spec import differing_paths, parse_yaml
@@ -117,6 +117,10 @@ def read_source_run(protocol):
         if getattr(source, key) != getattr(protocol, key):
             raise RunFolderError(f"{place}: its {what} differs from this protocol's ({key}); a run builds only on "
                                  "one with the same system, coordinates, restraints, pressure and timestep.")
+    if source.solute is not None and protocol.solute is not None and source.solute.atoms != protocol.solute.atoms:
+        raise RunFolderError(f"{place}: scales another solute (solute.atoms {source.solute.atoms!r}, here "
+                             f"{protocol.solute.atoms!r}); the same solute scale means the same state only for "
+                             "the same solute.")
     axes = tuple(a.coordinate for a in protocol.umbrella)
     if tuple(a.coordinate for a in source.umbrella) != axes:
         raise RunFolderError(f"{place}: has umbrellas along ({', '.join(a.coordinate for a in source.umbrella)}), "
@@ -134,16 +138,16 @@ def conditions_to_run(protocol, source):
     """The conditions of ``protocol`` its source run does not cover, numbered from 0, and
     their ladder shape (for swaps); everything when there is no source."""
     conditions = build_conditions(protocol)
-    ladder_shape = (len(protocol.temperatures), *[len(a.centres) for a in protocol.umbrella])
+    shape = ladder_shape(protocol)
     if source is None:
-        return conditions, ladder_shape
+        return conditions, shape
     added = [c for c in conditions if index_of_condition(c, source.conditions) is None]
     place = f"{protocol.path}: run.builds_on ({source.folder})"
     if not added:
         raise RunFolderError(f"{place}: this protocol adds no condition to that run; add umbrella centres or "
                              "temperatures (or, to run it longer, raise run.production and run it in its own folder).")
     added = tuple(replace(c, index=k) for k, c in enumerate(added))
-    shape = ladder_of(added, ladder_shape)
+    shape = ladder_of(added, shape)
     if protocol.exchange is not None and protocol.exchange.pairs != "any" and shape is None:
         raise RunFolderError(f"{place}: the conditions this protocol adds do not form a ladder of their own (every "
                              "added temperature with every added window), which swaps between neighbours need; "
@@ -172,11 +176,11 @@ def choose_nearest(conditions, values_na, temperature_n, periodic_a):
     """For each condition, the stored configuration n to start its walker from.
 
     Nearest first in umbrella energy of the condition (kT: window distance in spring
-    widths), then in temperature (|ln T_k/T_n|, T_n the temperature the configuration
-    was sampled at). values_na: umbrella coordinate values of each configuration.
+    widths), then in effective temperature T/λ (|ln|, T_n/λ_n that of the condition the
+    configuration was sampled in). values_na: umbrella coordinate values of each configuration.
     """
     beta_k = np.array([beta(c.temperature) for c in conditions])[:, None]
     bias_kn = beta_k * compute_bias_energies(conditions, values_na, periodic_a)
-    heat_kn = np.abs(np.log(np.array([c.temperature for c in conditions])[:, None]
+    heat_kn = np.abs(np.log(np.array([c.temperature / c.solute_scale for c in conditions])[:, None]
                             / np.asarray(temperature_n, dtype=float)[None, :]))
     return [int(np.lexsort((heat_kn[k], bias_kn[k]))[0]) for k in range(len(conditions))]

@@ -3,7 +3,7 @@ every input checked and nothing written. ``boost check`` stops here; ``boost run
 the plan to the scheduler."""
 
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -12,6 +12,7 @@ from .engine import PlatformChoice, choose_platform, prepare_system, read_checkp
 from .lineage import choose_nearest, conditions_to_run, read_source_run, source_chain
 from .protocol import resolve_coordinates
 from .provenance import describe_environment, describe_git
+from .solute_spec import resolve_solute_atoms
 from .store import choose_checkpoint, dcd_frame_bytes, read_ledger_conditions, read_run_id
 from .systems import build_system
 from .workers import rank_walkers
@@ -28,7 +29,8 @@ class Plan:
     system: object
     umbrella_names: tuple
     platform: object
-    ladder_shape: tuple = ()     # temperatures, then window axes, of the conditions run (for swaps)
+    ladder_shape: tuple = ()     # temperatures, solute scales, then window axes, of the conditions run (for swaps)
+    solute: object = None        # boost.solute_scaling.SoluteScaledSystem without its system, or None
     source: object = None        # boost.lineage.SourceRun that run.builds_on names, or None
     starts: tuple = ()           # per walker (positions nm, box nm or None); empty: the system's own
 
@@ -49,7 +51,8 @@ def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, c
     built = build_system(protocol.system)
     coordinates = resolve_coordinates(protocol, built.topology)
     conditions, ladder_shape = conditions_to_run(protocol, source)
-    system, umbrella_names = prepare_system(built, protocol, coordinates)
+    solute, scaled_built = _solute_scaled(protocol, built)
+    system, umbrella_names = prepare_system(scaled_built, protocol, coordinates)
     settings = platform or protocol.platform
     if settings.name == "auto" and not probe:
         choice = PlatformChoice("auto", {})
@@ -59,7 +62,8 @@ def make_plan(protocol, *, platform=None, probe=True, workers=None, comm=None, c
                                  n_walkers=n_walkers, cores=cores,
                                  workers=settings.workers if workers is None else workers)
     starts = _stored_starts(source, system, conditions, coordinates, umbrella_names, built.masses) if source else ()
-    return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice, ladder_shape, source, starts)
+    return Plan(protocol, built, coordinates, conditions, system, umbrella_names, choice, ladder_shape, solute,
+                source, starts)
 
 
 def _stored_starts(source, system, conditions, coordinates, umbrella_names, masses):
@@ -71,13 +75,27 @@ def _stored_starts(source, system, conditions, coordinates, umbrella_names, mass
         held = read_ledger_conditions(folder.path)
         configurations += read_checkpoint_configurations(system, PlatformChoice(*folder.recorded_platform()),
                                                          checkpoint.walker_states)
-        temperatures += [held[k].temperature for k in checkpoint.scheduler["assignment"]]
+        temperatures += [held[k].temperature / held[k].solute_scale for k in checkpoint.scheduler["assignment"]]
     umbrella = [coordinates[name] for name in umbrella_names]
     xyz = np.stack([positions for positions, _ in configurations])
     boxes = None if configurations[0][1] is None else np.stack([box for _, box in configurations])
     values_na = compute_coordinate_values_many(umbrella, xyz, masses, boxes)
     chosen = choose_nearest(conditions, values_na, temperatures, [c.periodic for c in umbrella])
     return tuple(configurations[n] for n in chosen)
+
+
+def _solute_scaled(protocol, built):
+    """(solute record, built system whose System is solute-scaled), or (None, built) without a solute.
+
+    Scaled before restraints, umbrellas and a barostat are added: those stay unscaled.
+    """
+    if protocol.solute is None:
+        return None, built
+    from .solute_scaling import build_solute_scaled_system
+
+    atoms = resolve_solute_atoms(protocol.solute, built.topology)
+    scaled = build_solute_scaled_system(built.system, atoms, place=protocol.solute.place, whole_system=True)
+    return replace(scaled, system=None), replace(built, system=scaled.system)
 
 
 def describe_run(plan, seeds, swap_seed):

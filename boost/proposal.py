@@ -89,6 +89,9 @@ def read_targets(protocol, *, acceptance=None, overlap=None, error=None):
 def what_to_plan(protocol):
     """'ladder' or 'windows'; a one-line ProtocolError when the protocol has neither (or both)."""
     name = protocol.path
+    if protocol.solute is not None:
+        raise ProtocolError(f"{name}: solute has a ladder of solute scales; boost propose plans temperature "
+                            "ladders and umbrella windows only.")
     ladder, axes = len(protocol.temperatures) > 1, protocol.umbrella
     if ladder and axes:
         raise ProtocolError(f"{name}: temperatures and umbrella are both set; boost propose plans a temperature "

@@ -1,7 +1,7 @@
 """Protocol files: YAML -> validated, frozen protocol objects.
 
 A protocol fully determines a run: the system, the coordinates, the conditions (the
-temperature ladder times the umbrella windows), how long to run, what to analyse and the
+temperature ladder times the solute rungs times the umbrella windows), how long to run, what to analyse and the
 seed. Every input check happens here (the system spec's in :mod:`boost.system_spec`), so
 later stages trust what they are given; the only checks left for later need the built system
 (atom selections, see :func:`resolve_coordinates`) or the contents of its files.
@@ -20,20 +20,23 @@ import numpy as np
 from .exceptions import ProtocolError
 from .limits import (MAX_COUNT, MAX_SPEC_BYTES, MAX_SWAP_ATTEMPTS, MAX_TITLE_LENGTH, check_conditions,
                      check_swap_proposals)
+from .solute_spec import read_solute_spec
 from .spec import Node, parse_yaml, read_text
 from .system_spec import read_system_spec
 
 SCHEMA_VERSION = 1
 _NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")   # used with match(); \Z refuses "x\n"
 _SAME_ANGLE = 1e-9     # rad: dihedral window centres closer than this (modulo 360 deg) are one centre
-_RESERVED = {"cycle", "walker", "condition", "potential", "volume", "reduced", "time", "production"}
+# ledger column names (a coordinate's values get a column named after it)
+_RESERVED = {"cycle", "walker", "condition", "potential", "volume", "reduced", "time", "production",
+             "solute_cross", "solute_inner"}
 _POINT_COUNT = {"distance": 2, "angle": 3, "dihedral": 4, "position": 1}
 _AXES = {"x": 0, "y": 1, "z": 2}
 _RANGES = {"dihedral": (-math.pi, math.pi, "-180 deg to 180 deg"), "angle": (0.0, math.pi, "0 deg to 180 deg"),
            "distance": (0.0, math.inf, "0 nm or more")}
 TOP_KEYS = ("protocol", "title", "system", "seed", "temperature", "timestep", "friction",
             "pressure", "platform", "coordinates", "flat_bottom", "umbrella", "temperatures",
-            "exchange", "run", "basins", "analysis")
+            "exchange", "run", "basins", "analysis", "solute")
 
 
 @dataclass(frozen=True)
@@ -177,6 +180,7 @@ class Protocol:
     run: RunSettings
     basins: dict           # name -> {coordinate: (lower, upper)}
     analysis: AnalysisSettings
+    solute: object = None  # boost.solute_spec.SoluteSpec, or None: no solute scaling
 
     @property
     def base_dir(self):
@@ -226,11 +230,13 @@ def parse_protocol(text, path):
     umbrella = _read_umbrella(root.get("umbrella", {}), coordinates)
     temperatures = _read_temperatures(root.get("temperatures", None), temperature)
     exchange = _read_exchange(root.get("exchange", None))
-    n_conditions = check_conditions(root.get("umbrella" if umbrella else "temperatures", None),
-                                    len(temperatures), [len(axis.centres) for axis in umbrella])
+    solute = read_solute_spec(root.get("solute", None), temperature)
+    ladder = "umbrella" if umbrella else "solute" if solute else "temperatures"
+    n_conditions = check_conditions(root.get(ladder, None), len(temperatures), [len(axis.centres) for axis in umbrella],
+                                    n_scales=len(solute.scales) if solute else 1)
     if exchange is not None and n_conditions < 2:
-        root.get("exchange").fail("used with a ladder: a 'temperatures' list or 'umbrella' windows "
-                                  "along a coordinate, which this protocol lacks")
+        root.get("exchange").fail("used with a ladder: a 'temperatures' list, 'solute' scales or 'umbrella' "
+                                  "windows along a coordinate, which this protocol lacks")
     if exchange is not None and exchange.pairs == "any":
         check_swap_proposals(root.get("exchange"), exchange.attempts, n_conditions)   # one walker each
     run = _read_run(root.get("run"), timestep)
@@ -246,6 +252,7 @@ def parse_protocol(text, path):
         run=run,
         basins=_read_basins(root.get("basins", {}), coordinates),
         analysis=_read_analysis(root.get("analysis", {}), coordinates, run, timestep),
+        solute=solute,
     )
 
 

@@ -4,7 +4,8 @@ Every dimensional value carries its unit: nm, ps, K, kJ/mol, bar, amu, molar, as
 OpenMM's MD units, but angles in degrees (see :func:`boost.units.format_quantity`: the
 shortest number that reads back to the same value, radians when no decimal number of
 degrees does). Lists that a range made are written as that range again when it gives
-them back exactly (``{from, to, count}`` windows, ``{lowest, highest, count}`` ladders),
+them back exactly (``{from, to, count}`` windows, ``{lowest, highest, count}`` ladders,
+``{lowest, count}`` solute scales; effective temperatures are written as the scales they give),
 defaults are written out, run lengths are times. A system given by a bundled name or a
 spec file is written as that name or path (relative to the protocol's folder, as
 written); an inline spec as a mapping.
@@ -16,6 +17,7 @@ path and hash; so dumping that gives the same text again.
 import numpy as np
 
 from .protocol import SCHEMA_VERSION
+from .solute_spec import dump_solute_spec
 from .spec import dump_yaml
 from .system_spec import dump_system_spec
 from .units import format_quantity
@@ -44,6 +46,7 @@ def dump_protocol(protocol):
             "flat_bottom": [_flat_bottom(restraint, p.coordinates) for restraint in p.flat_bottom],
             "umbrella": {axis.coordinate: _umbrella(axis, p.coordinates[axis.coordinate]) for axis in p.umbrella},
             "temperatures": None if p.temperatures == (p.temperature,) else _ladder(p.temperatures),
+            "solute": dump_solute_spec(p.solute),
             "exchange": p.exchange and {"pairs": p.exchange.pairs, "attempts": p.exchange.attempts},
             "run": _run(p.run, p.timestep),
             "basins": {name: {coordinate: [_value(bound, p.coordinates[coordinate]) for bound in interval]

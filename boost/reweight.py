@@ -468,20 +468,34 @@ def _solve(u_kn, N_k, initial_f_k):
     Without a starting point, a large problem starts from the solution on an evenly
     thinned set of its samples (a few thousand, solved in a fraction of the time): the
     warm-started solve then needs few steps, about a third less time for 10⁵ samples.
+    A start from zero that fails is tried again from pymbar's BAR estimates between
+    neighbouring conditions: free energies a hundred kT or more apart (a temperature or
+    solute-scale ladder on a molecule of large energies) defeat pymbar's solvers from zero
+    (seen with pymbar 4.0.3; tests/test_reweight.py).
     """
     if initial_f_k is None and u_kn.shape[1] > _COARSE_ABOVE:
         stride = u_kn.shape[1] // _COARSE_SAMPLES
         columns = np.arange(0, u_kn.shape[1], stride)
         origin = np.repeat(np.arange(N_k.size), N_k)
         try:
-            guess = _solve_once(u_kn[:, columns], np.bincount(origin[columns], minlength=N_k.size), None).f_k
+            guess = _solve_start(u_kn[:, columns], np.bincount(origin[columns], minlength=N_k.size)).f_k
             return _solve_once(u_kn, N_k, guess)
         except AnalysisError:
             pass                   # the thinned set did not overlap well enough: solve from zero
-    return _solve_once(u_kn, N_k, initial_f_k)
+    if initial_f_k is not None:
+        return _solve_once(u_kn, N_k, initial_f_k)
+    return _solve_start(u_kn, N_k)
 
 
-def _solve_once(u_kn, N_k, initial_f_k):
+def _solve_start(u_kn, N_k):
+    """Solved without a starting point: from zero, then from BAR estimates (see _solve)."""
+    try:
+        return _solve_once(u_kn, N_k, None)
+    except AnalysisError:
+        return _solve_once(u_kn, N_k, None, initialize="BAR")
+
+
+def _solve_once(u_kn, N_k, initial_f_k, initialize="zeros"):
     protocol = None if initial_f_k is None else _WARM_START_SOLVER
     # a warm start's hand-over from hybr to adaptive is routine, not news: pymbar's log
     # is muted for it (the normalization check below catches real failures)
@@ -490,7 +504,7 @@ def _solve_once(u_kn, N_k, initial_f_k):
     if initial_f_k is not None:
         pymbar_logger.setLevel(logging.ERROR)
     try:
-        mbar = pymbar.MBAR(u_kn, N_k, initial_f_k=initial_f_k, solver_protocol=protocol)
+        mbar = pymbar.MBAR(u_kn, N_k, initial_f_k=initial_f_k, solver_protocol=protocol, initialize=initialize)
     except pymbar.utils.ParameterError as err:
         raise AnalysisError(f"MBAR could not be solved: {err}") from err
     finally:

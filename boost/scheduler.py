@@ -136,7 +136,8 @@ class Scheduler:
             system_xml=openmm.XmlSerializer.serialize(plan.system), umbrella_names=plan.umbrella_names,
             positions=plan.built.positions, box_vectors=plan.built.box_vectors, conditions=plan.conditions,
             coordinates=tuple(self.coordinate_list), masses=self.masses, timestep=protocol.timestep,
-            friction=protocol.friction, platform=plan.platform, seeds=tuple(self.seeds), starts=plan.starts)
+            friction=protocol.friction, platform=plan.platform, seeds=tuple(self.seeds), solute=plan.solute,
+            starts=plan.starts)
 
     def _restore(self, workers, ledger, state):
         """Walkers, assignment and swap RNG at the last checkpoint; ledger cut back to it."""
@@ -172,7 +173,7 @@ class Scheduler:
                 try:
                     framing = bool(frames) and (cycle + 1) % run.frame_every == 0
                     reports = workers.propagate(run.steps_per_cycle, framing)
-                    values_rc, u_kr = self._evaluate(reports, assignment, cycle)
+                    values_rc, solute_r2, u_kr = self._evaluate(reports, assignment, cycle)
                 except SimulationError as err:
                     cycle, assignment, rng = self._retry(err, workers, ledger, frames, cycle)
                     bar.n = cycle
@@ -184,7 +185,7 @@ class Scheduler:
                     cycle, time=(cycle + 1) * cycle_ps, production=cycle >= run.equilibration_cycles,
                     condition_r=assignment, potential_r=[o.potential for o in reports],
                     volume_r=[o.volume for o in reports], values_rc=values_rc, u_kr=u_kr,
-                    swaps=tally, frames=written)
+                    solute_r2=solute_r2, swaps=tally, frames=written)
                 if status is not None:
                     status.add(cycle, assignment, values_rc[:, self.umbrella_columns], tally)
                     if status.due():
@@ -232,10 +233,11 @@ class Scheduler:
                                   f"(potential energy {reports[r].potential} kJ/mol).")
         values_rc = np.array([o.values for o in reports]).reshape(len(reports), len(self.coordinate_list))
         potential_r = np.array([o.potential for o in reports])
+        solute_r2 = np.array([o.solute or (0.0, 0.0) for o in reports]).reshape(len(reports), 2)
         u_kr = compute_reduced_potentials(
             plan.conditions, potential_r, values_rc[:, self.umbrella_columns], self.periodic_a,
-            volume_r=[o.volume for o in reports], pressure=plan.protocol.pressure)
-        return values_rc, u_kr
+            solute_r2=solute_r2, volume_r=[o.volume for o in reports], pressure=plan.protocol.pressure)
+        return values_rc, solute_r2, u_kr
 
 
 class WalkerBlowUp(SimulationError):

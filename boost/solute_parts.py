@@ -1,4 +1,4 @@
-"""Solute-scaled conditions as numbers: energy parts -> energies and reduced potentials.
+"""Solute-scaled conditions as numbers: energy parts -> each condition's energy.
 
 In solute tempering of the second kind (Wang, Friesner & Berne 2011) every walker runs at
 the same temperature T, and condition k scales the solute's interactions by its solute
@@ -9,8 +9,15 @@ at all. With s = √λ every such potential is a quadratic in s,
 
 so the three parts ``parts = (E0, E1, E2)`` of one configuration (in kJ/mol, measured by
 :func:`boost.solute_scaling.compute_solute_parts`) give its energy in every condition.
-λ = 1 is the physical potential. Arrays: parts_r3[r, j] part j of walker r's
-configuration; scale_k[k] the solute scale of condition k; u_kr[k, r] in kT.
+λ = 1 is the physical potential U = E0 + E1 + E2. Walkers report U and the two parts that
+λ scales, (E_cross, E_inner) = (E1, E2); then
+
+    U(x; λ) = U(x) + (√λ − 1) E_cross(x) + (λ − 1) E_inner(x),
+
+which is U itself, bit for bit, at λ = 1 (both factors are zero there). Reduced
+potentials are made from these energies in one place, boost.conditions. Arrays:
+parts_r3[r, j] part j of walker r's configuration; solute_r2[r] = (E_cross, E_inner);
+scale_k[k] the solute scale of condition k; energies in kJ/mol.
 
 No OpenMM here.
 
@@ -26,7 +33,6 @@ import math
 import numpy as np
 
 from .exceptions import ProtocolError
-from .units import beta
 
 
 def check_solute_scale(scale, *, place="solute scale"):
@@ -51,6 +57,21 @@ def check_solute_scales(scales, *, place="solute scales"):
     return np.array([check_solute_scale(v, place=f"{place}[{i}]") for i, v in enumerate(values)])
 
 
+def compute_solute_shifts(solute_r2, scale_k):
+    """shift_kr[k, r] = (√λ_k − 1) E_cross + (λ_k − 1) E_inner of walker r, in kJ/mol:
+    what condition k adds to the physical potential (zero, exactly, where λ_k = 1).
+
+    Parameters
+    ----------
+    solute_r2 : ndarray, shape (n_walkers, 2), in kJ/mol
+    scale_k : ndarray, shape (n_conditions,), each in (0, 1]
+    """
+    solute_r2 = np.asarray(solute_r2, dtype=float).reshape(-1, 2)
+    scale_k = check_solute_scales(scale_k)
+    factors_k2 = np.stack([np.sqrt(scale_k) - 1.0, scale_k - 1.0], axis=1)
+    return factors_k2 @ solute_r2.T
+
+
 def compute_solute_energies(parts_r3, scale_k):
     """energy_kr[k, r] = E0 + √λ_k E1 + λ_k E2 of walker r's configuration, in kJ/mol.
 
@@ -62,15 +83,4 @@ def compute_solute_energies(parts_r3, scale_k):
     parts_r3 = np.atleast_2d(np.asarray(parts_r3, dtype=float))
     if parts_r3.ndim != 2 or parts_r3.shape[1] != 3:
         raise ValueError(f"parts_r3 must be shape (n_walkers, 3); got {parts_r3.shape}")
-    scale_k = check_solute_scales(scale_k)
-    powers_k3 = np.sqrt(scale_k)[:, None] ** np.arange(3)[None, :]  # 1, s, s²
-    return powers_k3 @ parts_r3.T
-
-
-def compute_solute_reduced_potentials(parts_r3, scale_k, temperature):
-    """u_kr[k, r]: reduced potential (kT) of walker r's configuration in condition k.
-
-    Every condition is at ``temperature`` (K): u_kr = β (E0 + √λ_k E1 + λ_k E2). A pV term,
-    being the same in every condition of one walker, is left to the caller.
-    """
-    return beta(temperature) * compute_solute_energies(parts_r3, scale_k)
+    return parts_r3.sum(axis=1)[None, :] + compute_solute_shifts(parts_r3[:, 1:], scale_k)

@@ -82,6 +82,9 @@ class SoluteScaledSystem:
         zeros when the system has none.
     nonbonded_group : int
         Force group of the NonbondedForce (where the dispersion correction is counted).
+
+    A run's walkers get a copy with ``system`` None (their System travels as XML):
+    :func:`compute_solute_parts` reads only the other fields.
     """
 
     system: openmm.System
@@ -91,7 +94,7 @@ class SoluteScaledSystem:
 
 
 # -- building ---------------------------------------------------------------------------
-def build_solute_scaled_system(system, solute_atoms, *, place="solute"):
+def build_solute_scaled_system(system, solute_atoms, *, place="solute", whole_system=False):
     """Copy ``system`` with its solute terms tied to the solute scale (module docstring).
 
     Parameters
@@ -99,9 +102,13 @@ def build_solute_scaled_system(system, solute_atoms, *, place="solute"):
     system : openmm.System
         Left unchanged.
     solute_atoms : sequence of int
-        0-based particle indices of the solute; atoms outside it (solvent) must exist.
+        0-based particle indices of the solute; atoms outside it (solvent) must exist
+        unless ``whole_system``.
     place : str
         Where the selection was written (file and key path), to begin error messages.
+    whole_system : bool
+        Accept every particle as the solute: a molecule in vacuum, where solute scaling
+        scales its torsions and nonbonded terms (not its bonds, angles and impropers).
 
     Returns
     -------
@@ -113,7 +120,7 @@ def build_solute_scaled_system(system, solute_atoms, *, place="solute"):
         One line: an empty, out-of-range or whole-system selection, a virtual site split
         from its parent atoms, or a force the scaling cannot handle (named).
     """
-    solute = _check_selection(system, solute_atoms, place)
+    solute = _check_selection(system, solute_atoms, place, whole_system)
     _check_forces(system, solute, place)
     scaled = openmm.XmlSerializer.clone(system)
     nonbonded = _the_nonbonded_force(scaled, place)
@@ -127,7 +134,7 @@ def build_solute_scaled_system(system, solute_atoms, *, place="solute"):
                               nonbonded_group=nonbonded.getForceGroup())
 
 
-def _check_selection(system, solute_atoms, place):
+def _check_selection(system, solute_atoms, place, whole_system):
     n_particles = system.getNumParticles()
     try:
         atoms = [int(i) for i in solute_atoms]
@@ -140,7 +147,7 @@ def _check_selection(system, solute_atoms, place):
         raise ProtocolError(f"{place}: particle index {bad[0]} is out of range for a system of "
                             f"{n_particles} particles.")
     solute = set(atoms)
-    if len(solute) == n_particles:
+    if len(solute) == n_particles and not whole_system:
         raise ProtocolError(f"{place} selects all {n_particles} particles of the system; solute scaling "
                             "needs atoms outside the solute (solvent). Select the solute only.")
     for i in range(n_particles):

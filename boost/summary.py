@@ -23,6 +23,11 @@ def describe_plan(plan):
                      f"{_angle_or_length(axis.centres[0], unit)} to {_angle_or_length(axis.centres[-1], unit)}")
     temperatures = ", ".join(f"{t:.1f}" for t in protocol.temperatures)
     lines.append(f"temperatures (K) {temperatures}")
+    if plan.solute is not None:
+        scales = ", ".join(f"{s:.4g}" for s in protocol.solute.scales)
+        hottest = protocol.temperature / protocol.solute.scales[-1]
+        lines.append(f"solute    {len(plan.solute.solute)} atoms ({protocol.solute.atoms}); scales {scales} "
+                     f"(effective temperatures up to {hottest:.1f} K)")
     lines.append(f"conditions {len(plan.conditions)}, walkers {plan.n_walkers}, "
                  f"swaps {'every cycle (' + protocol.exchange.pairs + ' pairs)' if protocol.exchange else 'none'}")
     if plan.source is not None:

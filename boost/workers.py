@@ -34,6 +34,7 @@ class WalkerSetup:
     friction: float
     platform: object
     seeds: tuple
+    solute: object = None     # boost.solute_scaling.SoluteScaledSystem without its system (that is system_xml)
     starts: tuple = ()        # per walker (positions, box_vectors) overriding the two above; empty: none
 
     def start_of(self, r):
@@ -43,7 +44,8 @@ class WalkerSetup:
 
 @dataclass(frozen=True)
 class Report:
-    """One walker after one cycle: potential (kJ/mol, umbrellas excluded), values (nm, rad)."""
+    """One walker after one cycle: potential (kJ/mol at λ = 1, umbrellas excluded), values (nm, rad),
+    solute parts (E_cross, E_inner) in kJ/mol or None."""
 
     walker: int
     potential: float
@@ -52,6 +54,7 @@ class Report:
     finite: bool
     positions: np.ndarray | None = None
     box_vectors: np.ndarray | None = None
+    solute: tuple | None = None
 
 
 class WalkerHost:
@@ -62,8 +65,10 @@ class WalkerHost:
 
         system = openmm.XmlSerializer.deserialize(setup.system_xml)
         self.setup = setup
-        self.walkers = {r: Walker(r, system, setup.umbrella_names, *setup.start_of(r), setup.conditions[r], timestep=setup.timestep, friction=setup.friction,
-                                  platform=setup.platform, seed=setup.seeds[r]) for r in indices}
+        self.walkers = {r: Walker(r, system, setup.umbrella_names, *setup.start_of(r), setup.conditions[r],
+                                  timestep=setup.timestep, friction=setup.friction, platform=setup.platform,
+                                  seed=setup.seeds[r], solute=setup.solute)
+                        for r in indices}
 
     def minimise(self):
         for walker in self.walkers.values():
@@ -82,7 +87,8 @@ class WalkerHost:
         for r, walker in self.walkers.items():
             walker.step(n_steps)
             observations[r] = walker.observe()
-        finite = {r: bool(np.isfinite(o.potential) and np.all(np.isfinite(o.positions)))
+        finite = {r: bool(np.isfinite(o.potential) and np.all(np.isfinite(o.positions))
+                          and (o.solute is None or np.all(np.isfinite(o.solute))))
                   for r, o in observations.items()}
         values = self._coordinate_values({r: o for r, o in observations.items() if finite[r]})
         reports = {}
@@ -90,7 +96,7 @@ class WalkerHost:
             keep = with_positions and finite[r]
             reports[r] = Report(r, o.potential, values.get(r, np.full(len(self.setup.coordinates), np.nan)),
                                 o.volume, finite[r], o.positions if keep else None,
-                                o.box_vectors if keep else None)
+                                o.box_vectors if keep else None, o.solute)
         return reports
 
     def _coordinate_values(self, observations):

@@ -69,6 +69,25 @@ def test_bad_protocol_is_one_line(write_protocol, tmp_path, old, new, pattern):
     assert not (tmp_path / "runs").exists()
 
 
+@pytest.mark.parametrize("solute, system, pattern", [
+    ("{atoms: 'resname ALA', scales: [1, 1.2]}", None, r"protocol\.yaml: solute\.scales\[1\] must be in \(0, 1\]"),
+    ("{atoms: 'resname XYZ', scales: [1, 0.5]}", None, r"protocol\.yaml: solute\.atoms must select at least one atom"),
+    ("{atoms: 'resname ALA', scales: [1, 0.5]}", "alanine-obc2",
+     r"protocol\.yaml: solute\.atoms: the system's force \d+ \((GBSAOBCForce|CustomGBForce)\) acts on solute atoms"),
+])
+def test_bad_solute_is_one_line_and_nothing_runs(write_protocol, tmp_path, solute, system, pattern):
+    text = ALANINE + f"solute: {solute}\n"
+    if system:
+        text = text.replace("system: alanine-vacuum", f"system: {system}")
+    path = write_protocol(text)
+    folder = tmp_path / "existing"
+    folder.mkdir()
+    (folder / "notes.txt").write_text("mine")
+    for command in (["check"], ["run", "-o", str(folder)]):
+        assert_one_line_error(boost(*command, str(path), cwd=tmp_path), pattern)
+    assert [p.name for p in folder.iterdir()] == ["notes.txt"] and not (tmp_path / "runs").exists()
+
+
 def test_missing_residue_template_is_one_line(write_protocol, tmp_path):
     # a force field without the residues of the structure (tip3p.xml holds water only)
     text = ALANINE.replace("system: alanine-vacuum", "system:\n  peptide: {sequence: [ACE, ALA, NME]}\n"

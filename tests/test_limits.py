@@ -46,6 +46,19 @@ def refused(text, pattern):
 
 
 # -- conditions and walkers --------------------------------------------------------------
+def test_a_solute_ladder_counts_against_the_bounds():
+    refused(protocol(solute=f"{{atoms: all, scales: {{lowest: 0.5, count: {MAX_COUNT + 1}}}}}"),
+            rf"solute\.scales\.count must be a whole number of at least 2 and at most {MAX_COUNT}")
+    refused(protocol(solute=f"{{atoms: all, effective_temperatures: {{highest: 600 K, count: {MAX_COUNT + 1}}}}}"),
+            rf"solute\.effective_temperatures\.count must be a whole number of at least 2 and at most {MAX_COUNT}")
+    # conditions are temperatures × solute scales × windows: each count below its bound, the product above
+    text = grid(1000, temperatures=3).replace(
+        "\numbrella:", f"\nsolute: {{atoms: all, scales: {{lowest: 0.5, count: 7}}}}\numbrella:")
+    message = refused(text, rf"umbrella must make at most {MAX_WALKERS} walkers")
+    assert "3 × 7 × 1000 = 21000" in message and "solute scales" in message
+    assert parse_protocol(protocol(solute="{atoms: all, scales: {lowest: 0.5, count: 7}}"), PATH).solute
+
+
 def test_a_huge_grid_is_refused_from_its_counts_without_expanding_it():
     tracemalloc.start()
     try:

@@ -213,3 +213,139 @@ def test_the_default_checkpoint_interval_fits_any_cycle(write_protocol, double_w
     text = double_well_protocol(run={"cycle": "3 ps", "equilibration": "3 ps", "production": "30 ps", "frame_every": "3 ps"})
     assert load_protocol(write_protocol(text)).run.checkpoint_every == 3          # 9 ps, nearest to 10 ps
     assert load_protocol(write_protocol(double_well_text)).run.checkpoint_every == 100
+
+
+# -- solute scaling ----------------------------------------------------------------------
+def solute(section):
+    """The test double well with a solute section (its scales are read without the system's atoms)."""
+    return double_well_protocol(solute=section)
+
+
+def test_solute_scales_as_a_list_or_a_geometric_range(write_protocol):
+    from boost.conditions import build_conditions, ladder_shape
+
+    listed = load_protocol(write_protocol(solute("{atoms: all, scales: [1, 0.8, 0.5]}")))
+    assert listed.solute.atoms == "all" and listed.solute.scales == (1.0, 0.8, 0.5)
+    ranged = load_protocol(write_protocol(solute("{atoms: all, scales: {lowest: 0.5, count: 4}}")))
+    # geometric: constant ratio from 1 down to the lowest (common practice, as for temperature ladders)
+    assert ranged.solute.scales[0] == 1.0 and ranged.solute.scales[-1] == 0.5
+    assert [b / a for a, b in zip(ranged.solute.scales, ranged.solute.scales[1:])] == pytest.approx([0.5 ** (1 / 3)] * 3)
+    # conditions: temperatures slowest, then solute scales, then windows (boost.conditions)
+    text = double_well_protocol(solute="{atoms: all, scales: [1, 0.5]}", temperatures="[300 K, 330 K]",
+                                umbrella={"x": "{centres: [-0.1 nm, 0 nm, 0.1 nm], spring: 500 kJ/mol/nm**2}"})
+    protocol = load_protocol(write_protocol(text))
+    conditions = build_conditions(protocol)
+    assert ladder_shape(protocol) == (2, 2, 3) and len(conditions) == 12
+    assert [(c.temperature, c.solute_scale, c.centres[0]) for c in conditions[:4]] == \
+        [(300.0, 1.0, -0.1), (300.0, 1.0, 0.0), (300.0, 1.0, 0.1), (300.0, 0.5, -0.1)]
+    assert conditions[6].temperature == 330.0 and conditions[6].solute_scale == 1.0
+    assert all(c.solute_scale == 1.0 for c in build_conditions(load_protocol(write_protocol(DOUBLE_WELL_TEXT))))
+
+
+DOUBLE_WELL_TEXT = double_well_protocol()
+
+
+def test_effective_temperatures_become_scales_at_the_protocol_temperature(write_protocol):
+    # λ = β_m / β_0 = T_0 / T_m (Wang, Friesner & Berne 2011; tests/REFERENCES.md, "Solute scaling")
+    listed = load_protocol(write_protocol(solute("{atoms: all, effective_temperatures: [300 K, 400 K, 600 K]}")))
+    assert listed.solute.scales == (1.0, 0.75, 0.5)
+    ranged = load_protocol(write_protocol(solute("{atoms: all, effective_temperatures: {highest: 600 K, count: 3}}")))
+    assert ranged.solute.scales == pytest.approx((1.0, 2 ** -0.5, 0.5)) and ranged.solute.scales[0] == 1.0
+    # in °C too: the first rung must be the protocol's temperature, whatever its unit
+    celsius = load_protocol(write_protocol(solute("{atoms: all, effective_temperatures: [26.85 degC, 600 K]}")))
+    assert celsius.solute.scales == (1.0, 0.5)
+
+
+BAD_SOLUTE = [
+    ("{atoms: all, scales: [1, 1.5]}", r"protocol\.yaml: solute\.scales\[1\] must be in \(0, 1\]"),
+    ("{atoms: all, scales: [1, 0]}", r"protocol\.yaml: solute\.scales\[1\] must be in \(0, 1\]"),
+    ("{atoms: all, scales: [1, -0.5]}", r"solute\.scales\[1\] must be in \(0, 1\]"),
+    ("{atoms: all, scales: [1, .nan]}", r"solute\.scales\[1\] must be a finite number"),
+    ("{atoms: all, scales: [1, 0.5 K]}", r"solute\.scales\[1\] must be a plain number"),
+    ("{atoms: all, scales: [0.8, 0.5]}", r"solute\.scales\[0\] must be 1 \(the first rung is the physical"),
+    ("{atoms: all, scales: [1, 0.5, 0.7]}", r"solute\.scales must be solute scales falling strictly from 1"),
+    ("{atoms: all, scales: [1, 1]}", r"solute\.scales must be solute scales falling strictly from 1"),
+    ("{atoms: all, scales: [1]}", r"solute\.scales must be a list of at least 2 items"),
+    ("{atoms: all, scales: {lowest: 1.5, count: 3}}", r"solute\.scales\.lowest must be in \(0, 1\]"),
+    ("{atoms: all, scales: {lowest: 0, count: 3}}", r"solute\.scales\.lowest must be in \(0, 1\]"),
+    ("{atoms: all, scales: {lowest: 1, count: 3}}", r"solute\.scales\.lowest must be below 1"),
+    ("{atoms: all, scales: {lowest: 0.5, count: 1}}", r"solute\.scales\.count must be a whole number of at least 2"),
+    ("{atoms: all, scales: {lowest: 0.5, highest: 1, count: 3}}", r"solute\.scales\.highest is not a known key"),
+    ("{atoms: all, effective_temperatures: [310 K, 400 K]}",
+     r"solute\.effective_temperatures\[0\] must be the protocol's temperature \(300 K\)"),
+    ("{atoms: all, effective_temperatures: [300 K, 280 K]}",
+     r"solute\.effective_temperatures must be a strictly increasing list of temperatures"),
+    ("{atoms: all, effective_temperatures: [300 K, 400]}", r"solute\.effective_temperatures\[1\] must be a temperature"),
+    ("{atoms: all, effective_temperatures: {highest: 250 K, count: 3}}",
+     r"solute\.effective_temperatures\.highest must be above the protocol's temperature \(300 K\)"),
+    ("{atoms: all, scales: [1, 0.5], effective_temperatures: [300 K, 600 K]}",
+     r"protocol\.yaml: solute must be a mapping with 'atoms' and exactly one of 'scales' or 'effective_temperatures'"),
+    ("{atoms: all}", r"solute must be a mapping with 'atoms' and exactly one of"),
+    ("{scales: [1, 0.5]}", r"protocol\.yaml: solute\.atoms is required but missing"),
+    ("{atoms: '', scales: [1, 0.5]}", r"solute\.atoms must be a non-empty text"),
+    ("{atoms: [0, 1], scales: [1, 0.5]}", r"solute\.atoms must be a non-empty text"),
+    ("{atoms: all, scale: [1, 0.5]}", r"solute\.scale is not a known key\. Did you mean 'scales'\?"),
+    ("[1, 0.5]", r"protocol\.yaml: solute must be a mapping"),
+    ("{atoms: all, scales: 0.5}", r"solute\.scales must be a list of solute scales \[1, \.\.\.\] or \{lowest, count\}"),
+    ("{atoms: all, effective_temperatures: 600 K}", r"solute\.effective_temperatures must be a list of temperatures"),
+]
+
+
+@pytest.mark.parametrize("section, message", BAD_SOLUTE)
+def test_bad_solute_section_is_one_clear_line(write_protocol, section, message):
+    with pytest.raises(ProtocolError, match=message) as info:
+        load_protocol(write_protocol(solute(section)))
+    assert "\n" not in str(info.value)
+
+
+def test_exchange_along_solute_scales_alone_is_a_ladder(write_protocol):
+    protocol = load_protocol(write_protocol(double_well_protocol(solute="{atoms: all, scales: [1, 0.5]}",
+                                                                 exchange="{pairs: adjacent}")))
+    assert protocol.exchange is not None
+
+
+SOLVATED = """\
+protocol: 1
+system:
+  peptide: {sequence: [ACE, ALA, NME]}
+  water_box: {padding: 0.5 nm}
+  nonbonded: {method: pme, cutoff: 0.6 nm}
+seed: 1
+temperature: 300 K
+timestep: 2 fs
+run: {cycle: 0.1 ps, production: 1 ps}
+"""
+
+
+@pytest.mark.parametrize("text, atoms, message", [
+    (SOLVATED, "resname XYZ", r"protocol\.yaml: solute\.atoms must select at least one atom\. Got 'resname XYZ'"),
+    (SOLVATED, "resname ALA and", r"protocol\.yaml: solute\.atoms must be an mdtraj selection"),
+    (SOLVATED, "all", r"protocol\.yaml: solute\.atoms must select the solute only, not the solvent around it.*"
+                      r"matches all \d+ atoms of a system with solvent"),
+    (SOLVATED.replace("  water_box: {padding: 0.5 nm}\n  nonbonded: {method: pme, cutoff: 0.6 nm}\n",
+                      "  implicit_solvent: obc2\n"), "resname ALA",
+     r"protocol\.yaml: solute\.atoms: the system's force \d+ \((GBSAOBCForce|CustomGBForce)\) acts on solute atoms"),
+])
+def test_a_solute_the_build_cannot_scale_is_one_line_before_any_md(write_protocol, text, atoms, message):
+    from boost.plan import make_plan
+
+    protocol = load_protocol(write_protocol(text + f"solute: {{atoms: {atoms!r}, scales: [1, 0.5]}}\n"))
+    with pytest.raises(ProtocolError, match=message) as info:
+        make_plan(protocol, probe=False)           # the build stage: no walker made, no step taken
+    assert "\n" not in str(info.value)
+
+
+def test_the_whole_molecule_in_vacuum_may_be_the_solute(write_protocol):
+    from boost.plan import make_plan
+
+    text = SOLVATED.replace("  water_box: {padding: 0.5 nm}\n  nonbonded: {method: pme, cutoff: 0.6 nm}\n", "")
+    plan = make_plan(load_protocol(write_protocol(text + "solute: {atoms: all, scales: [1, 0.5]}\n")), probe=False)
+    assert plan.solute.solute == tuple(range(22)) and plan.n_walkers == 2
+
+
+def test_propose_says_it_does_not_plan_solute_ladders(write_protocol):
+    from boost.proposal import what_to_plan
+
+    protocol = load_protocol(write_protocol(solute("{atoms: all, scales: [1, 0.5]}")))
+    with pytest.raises(ProtocolError, match=r"protocol\.yaml: solute has a ladder of solute scales; boost propose plans"):
+        what_to_plan(protocol)

@@ -62,6 +62,7 @@ umbrella:
           300 kJ/mol/rad**2, 400 kJ/mol/rad**2]}
   mix: {centres: [0.1 nm, 0.25 nm, 0.333 nm], spring: 500 kJ/mol/nm**2}
 temperatures: [310 K, 330 K, 352.5 K]
+solute: {atoms: "resname ALA and not element H", scales: [1, 0.75, 0.6]}
 exchange: {pairs: any, attempts: 2}
 run:
   cycle: 0.25 ps
@@ -89,9 +90,22 @@ def test_a_protocol_with_every_key_round_trips(tmp_path):
     protocol = parse_protocol(EVERY_KEY, tmp_path / "protocol.yaml")
     text = assert_round_trip(protocol)
     for line in ("pressure: 1.01325 bar", "friction: 5/ps", "timestep: 0.001 ps", "memory: 768 MiB",
-                 "block: 2.5 ps", "checkpoint_every: 2.5 ps", "frame_every: 0.5 ps", "- coordinate: bend"):
+                 "block: 2.5 ps", "checkpoint_every: 2.5 ps", "frame_every: 0.5 ps", "- coordinate: bend",
+                 "  atoms: resname ALA and not element H\n  scales: [1.0, 0.75, 0.6]\n"):
         assert line in text, line
     assert "to: 150 deg" in text and "from: -180 deg" in text and "twist: [150 deg, -150 deg]" in text
+
+
+def test_solute_scales_are_written_as_their_range_or_as_numbers(tmp_path):
+    ranged = DOUBLE_WELL + "solute: {atoms: all, scales: {lowest: 0.4, count: 5}}\n"
+    dumped = assert_round_trip(parse_protocol(ranged, tmp_path / "protocol.yaml"))
+    assert "  scales:\n    lowest: 0.4\n    count: 5\n" in dumped
+    # effective temperatures are written as the scales T / T_k they give, exactly
+    hot = DOUBLE_WELL + "solute: {atoms: all, effective_temperatures: [300 K, 350 K, 420 K]}\n"
+    protocol = parse_protocol(hot, tmp_path / "protocol.yaml")
+    dumped = assert_round_trip(protocol)
+    assert "effective_temperatures" not in dumped and "scales: [1.0, 0.8571428571428571, 0.7142857142857143]" in dumped
+    assert parse_protocol(dumped, tmp_path / "protocol.yaml").solute.scales == (1.0, 300 / 350, 300 / 420)
 
 
 def test_a_geometric_ladder_is_written_as_its_range(tmp_path):

@@ -127,6 +127,29 @@ def test_harmonic_wells_free_energy_difference(n_dims):
     assert abs(f - exact_target) < 4.0 * df and abs(f - exact_target) < 0.05
 
 
+def test_a_temperature_ladder_with_free_energies_far_apart_is_solved(caplog):
+    # source: exact — d harmonic degrees of freedom of spring K under a constant energy U0:
+    # f(β) = β U0 − (d/2) ln(2π / (β K)) (tests/REFERENCES.md, harmonic well). With U0 like
+    # a bound molecule's (−1100 kJ/mol) the free energies of 300, 380 and 480 K lie 90 and 160 kT
+    # apart, and pymbar's solvers do not converge from zero (seen with pymbar 4.0.3, below).
+    import logging
+
+    import pymbar
+
+    rng = np.random.default_rng(15)
+    d, spring, offset, n_per = 15, 1.0, -1100.0, 400
+    beta_k = 1.0 / (8.314462618e-3 * np.array([300.0, 380.0, 480.0]))
+    r2_n = np.concatenate([np.sum(rng.normal(0.0, (b * spring) ** -0.5, (n_per, d)) ** 2, axis=1) for b in beta_k])
+    u_kn = beta_k[:, None] * (offset + 0.5 * spring * r2_n[None, :])
+    with caplog.at_level(logging.CRITICAL, logger="pymbar"):
+        from_zero = pymbar.MBAR(u_kn, [n_per] * 3)
+        assert not np.allclose(from_zero.weights().sum(axis=0), 1.0)       # the failure this guards against
+        result = Reweighting(u_kn, [n_per] * 3)
+    exact = beta_k * offset - 0.5 * d * np.log(2 * np.pi / (beta_k * spring))
+    exact -= exact[0]
+    assert np.all(np.abs(result.f_k - exact) < 4.0 * result.df_k + 1e-12) and np.all(np.abs(result.f_k - exact) < 0.2)
+
+
 def test_pmf_of_umbrella_windows_is_the_unbiased_well(umbrella):
     # source: exact — unbiased PMF is ½ β K x²; per bin, -ln ∫_bin exp(-½Kx²) dx via
     # the Gaussian cdf (scipy.stats.norm), which differs from ½Kx² at the centre by

@@ -21,8 +21,8 @@ from openmm import unit
 
 from boost import systems
 from boost.exceptions import ProtocolError
-from boost.solute_parts import (check_solute_scale, check_solute_scales, compute_solute_energies,
-                                compute_solute_reduced_potentials)
+from boost.conditions import Condition, compute_reduced_potentials
+from boost.solute_parts import check_solute_scale, check_solute_scales, compute_solute_energies
 from boost.solute_scaling import (ROOT_SHIFT, SCALE_SHIFT, build_solute_scaled_system,
                                   compute_solute_parts, set_solute_scale)
 from boost.spec import Node
@@ -194,7 +194,11 @@ def test_reduced_potentials_of_two_configurations(part_of_a_peptide):
     parts_r3 = [compute_solute_parts(scaled, context)]
     context.setPositions(moved * unit.nanometer)
     parts_r3.append(compute_solute_parts(scaled, context))
-    u_kr = compute_solute_reduced_potentials(parts_r3, SCALES, 310.0)
+    # the run's one mechanism: the physical potential and the two scaled parts, per condition
+    conditions = [Condition(k, 310.0, solute_scale=s) for k, s in enumerate(SCALES)]
+    parts_r3 = np.array(parts_r3)
+    u_kr = compute_reduced_potentials(conditions, parts_r3.sum(axis=1), np.zeros((2, 0)), [],
+                                      solute_r2=parts_r3[:, 1:])
     # 1/kT from OpenMM's own gas constant (CODATA; common practice)
     kt = (unit.MOLAR_GAS_CONSTANT_R * 310.0 * unit.kelvin).value_in_unit(unit.kilojoule_per_mole)
     for r, positions in enumerate((built.positions, moved)):

@@ -12,7 +12,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from ..conditions import compute_unbiased_reduced_potential
+from ..conditions import compute_unbiased_reduced_potential, ladder_shape
 from ..diagnostics import closes_circle, summarise_swaps, warn_poor_overlap
 from ..exceptions import AnalysisError
 from ..protocol import UNCERTAINTY_METHODS
@@ -57,10 +57,10 @@ def analyse_run(folder, *, temperature=None, energy_unit=None, memory=None, unce
     values_nc = np.stack([gather(data.values_rtc[:, :, c], picks) for c in range(len(data.coordinate_names))],
                          axis=1) if data.coordinate_names else np.zeros((len(u_n), 0))
     labels = condition_labels(data, protocol)
-    ladder_shape = (len(ladder), *[len(a.centres) for a in protocol.umbrella])
-    circles = tuple(1 + a for a, axis in enumerate(protocol.umbrella)
+    shape = ladder_shape(protocol)
+    circles = tuple(2 + a for a, axis in enumerate(protocol.umbrella)      # after temperatures and solute scales
                     if protocol.coordinates[axis.coordinate].periodic and closes_circle(axis.centres))
-    poor = warn_poor_overlap(mbar.overlap, ladder_shape, lambda k: labels[k], circles) if len(N_k) > 1 else []
+    poor = warn_poor_overlap(mbar.overlap, shape, lambda k: labels[k], circles) if len(N_k) > 1 else []
     scale = energy_in(1.0, unit, temperature)
     production = set(data.cycle_t[data.production_t].tolist())
     profiles = compute_profiles(mbar, u_n, values_nc, data, protocol, scale)

@@ -38,6 +38,7 @@ def pool_runs(protocol, runs):
     condition_rt = np.full((n_walkers, n_cycles), ABSENT)
     potential_rt = np.full((n_walkers, n_cycles), np.nan)
     volume_rt = np.full((n_walkers, n_cycles), np.nan)
+    solute_rt2 = np.full((n_walkers, n_cycles, 2), np.nan)
     values_rtc = np.full((n_walkers, n_cycles, len(newest.coordinate_names)), np.nan)
     swaps, first = [], 0
     for (folder, data), length in zip(runs, lengths):
@@ -50,6 +51,7 @@ def pool_runs(protocol, runs):
         condition_rt[walkers, :length] = number[data.condition_rt[:, production]]
         potential_rt[walkers, :length] = data.potential_rt[:, production]
         volume_rt[walkers, :length] = data.volume_rt[:, production]
+        solute_rt2[walkers, :length] = data.solute_rt2[:, production]
         values_rtc[walkers, :length] = data.values_rtc[:, production]
         if data.swaps.size:
             rows = data.swaps[np.isin(data.swaps[:, 0], data.cycle_t[production])].copy()
@@ -63,7 +65,7 @@ def pool_runs(protocol, runs):
         angle_coordinates=newest.angle_coordinates, umbrella_coordinates=newest.umbrella_coordinates,
         cycle_t=np.arange(n_cycles), time_t=longest.time_t[longest.production_t],
         production_t=np.ones(n_cycles, dtype=bool), condition_rt=condition_rt, potential_rt=potential_rt,
-        volume_rt=volume_rt, values_rtc=values_rtc, u_krt=np.zeros((len(conditions), n_walkers, 0)),
+        volume_rt=volume_rt, solute_rt2=solute_rt2, values_rtc=values_rtc, u_krt=np.zeros((len(conditions), n_walkers, 0)),
         swaps=np.concatenate(swaps) if swaps else np.zeros((0, 5), dtype=int), metadata=newest.metadata)
 
 

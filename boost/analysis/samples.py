@@ -56,6 +56,8 @@ def condition_labels(data, protocol):
     labels = []
     for condition in data.conditions:
         parts = [f"{condition.temperature:.1f} K"] if len(protocol.temperatures) > 1 else []
+        if protocol.solute is not None:
+            parts.append(f"λ = {condition.solute_scale:.4g}")
         for axis, centre in zip(protocol.umbrella, condition.centres):
             parts.append(f"{axis.coordinate} = {format_coordinate(centre, axis.coordinate in data.angle_coordinates)}")
         labels.append(f"condition {condition.index} ({', '.join(parts) or 'unbiased'})")
@@ -106,6 +108,7 @@ def compute_sample_reduced_potentials(data, protocol, conditions, walkers, cycle
     periodic = [data.periodic[c] for c in columns]
     values = data.values_rtc[walkers, cycles][:, columns]
     return compute_reduced_potentials(conditions, data.potential_rt[walkers, cycles], values, periodic,
+                                      solute_r2=data.solute_rt2[walkers, cycles],
                                       volume_r=data.volume_rt[walkers, cycles], pressure=protocol.pressure)
 
 

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..conditions import ladder_shape
 from ..convergence import Cumulative, compute_cumulative
 from ..diagnostics import neighbour_pairs_on_grid
 from ..verdict import TOO_FEW, Verdict, count_crossing_walkers, count_effective, judge
@@ -180,10 +181,9 @@ def _acceptance_verdicts(data, protocol, production):
         return ()
     cycles = data.cycle_t[production]
     middle = cycles[cycles.size // 2]
-    ladder_shape = (len(protocol.temperatures), *[len(a.centres) for a in protocol.umbrella])
     rows = data.swaps[np.isin(data.swaps[:, 0], cycles)]
     out = []
-    for i, j in _judged_pairs(protocol, ladder_shape, rows):
+    for i, j in _judged_pairs(protocol, ladder_shape(protocol), rows):
         pair = rows[(rows[:, 1] == i) & (rows[:, 2] == j)]
         halves = [pair[pair[:, 0] < middle], pair[pair[:, 0] >= middle]]
         estimates = [_rate(h[:, 3].sum(), h[:, 4].sum()) for h in halves]

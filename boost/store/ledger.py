@@ -2,12 +2,17 @@
 
 Tables (units in column comments): ``meta`` (key, JSON value; ``header_sha256`` covers
 every other meta row and the conditions table), ``conditions`` (index, temperature K,
-centres, springs as JSON), ``cycles`` (cycle, time ps, production 0/1, ``checksum`` of the
-cycle's numbers, ``reduced_checksum`` of its reduced potentials), ``samples`` (cycle,
-walker, condition, potential kJ/mol, volume nm³, one column per coordinate in nm or rad,
-reduced: float64 bytes of u_k for every condition k, in kT), ``swaps`` (cycle, pair of
-conditions, attempts, accepted) and ``frames`` (walker, cycle, index in its DCD file,
-crc32 of the frame's bytes). Checksums: boost.store.checksums.
+centres, springs as JSON, solute scale λ), ``cycles`` (cycle, time ps, production 0/1,
+``checksum`` of the cycle's numbers, ``reduced_checksum`` of its reduced potentials),
+``samples`` (cycle, walker, condition, potential kJ/mol at λ = 1, volume nm³, the solute
+parts solute_cross and solute_inner in kJ/mol (boost.solute_parts; zero without a solute),
+one column per coordinate in nm or rad, reduced: float64 bytes of u_k for every condition
+k, in kT), ``swaps`` (cycle, pair of conditions, attempts, accepted) and ``frames``
+(walker, cycle, index in its DCD file, crc32 of the frame's bytes). Checksums:
+boost.store.checksums; the solute columns are numbers of their sample's record like the others.
+
+Ledgers of format 2 (before solute scaling) have neither solute column; they read with
+λ = 1 and zero parts, and a run that wrote one goes on writing it in its own format.
 
 Reading verifies before anything is used: SQLite's quick_check, the header digest, and
 every cycle's checksums; damage is reported with the first damaged cycle
@@ -28,8 +33,11 @@ from ..exceptions import RunFolderError
 from . import checksums
 from .folder import LEDGER
 
-#: Ledger layout version; 2 added checksums, the header digest and the protocol text.
-FORMAT = 2
+#: Ledger layout version; 2 added checksums, the header digest and the protocol text; 3 the
+#: solute scale of each condition and the solute parts of each sample.
+FORMAT = 3
+#: The first format with solute columns.
+SOLUTE_FORMAT = 3
 _HEADER_KEY = "header_sha256"
 _TABLES = ("meta", "conditions", "cycles", "samples", "swaps", "frames")
 
@@ -45,13 +53,14 @@ class LedgerDamage(RunFolderError):
 
 def _header_digest(meta_rows, condition_rows):
     """sha256 over the meta rows (bytes key, bytes JSON value) but the digest's own, and the
-    conditions rows (index, temperature, centres bytes, springs bytes)."""
+    conditions rows (index, temperature, centres bytes, springs bytes[, solute scale])."""
     digest = hashlib.sha256()
     for key, value in sorted(meta_rows):
         if key != _HEADER_KEY.encode():
             digest.update(b"%d:%s%d:%s" % (len(key), key, len(value), value))
-    for index, temperature, centres, springs in condition_rows:
-        digest.update(f"{index!r}|{temperature!r}|".encode() + bytes(centres) + b"|" + bytes(springs) + b"\n")
+    for index, temperature, centres, springs, *scale in condition_rows:
+        solute = f"|{scale[0]!r}".encode() if scale else b""
+        digest.update(f"{index!r}|{temperature!r}|".encode() + bytes(centres) + b"|" + bytes(springs) + solute + b"\n")
     return digest.hexdigest()
 
 
@@ -68,23 +77,37 @@ class Ledger:
         self.connection = sqlite3.connect(self.path)
         self.connection.execute("PRAGMA journal_mode=WAL")
         self.connection.execute("PRAGMA synchronous=NORMAL")
+        self.format = self._recorded_format() or FORMAT
+
+    def _recorded_format(self):
+        """The format of an existing ledger (None for a new file)."""
+        if not self.connection.execute("SELECT 1 FROM sqlite_master WHERE name = 'meta'").fetchone():
+            return None
+        row = self.connection.execute("SELECT value FROM meta WHERE key = 'ledger_format'").fetchone()
+        return json.loads(row[0]) if row else None
+
+    @property
+    def has_solute_columns(self):
+        return self.format >= SOLUTE_FORMAT
 
     def create(self, conditions, metadata):
+        self.format = FORMAT
         columns = "".join(f', "{name}" REAL' for name in self.coordinate_names)
         meta_rows = [(key.encode(), json.dumps(value).encode())
                      for key, value in {**metadata, "ledger_format": FORMAT}.items()]
         condition_rows = [(c.index, float(c.temperature), json.dumps(c.centres).encode(),
-                           json.dumps(c.springs).encode()) for c in conditions]
+                           json.dumps(c.springs).encode(), float(c.solute_scale)) for c in conditions]
         meta_rows.append((_HEADER_KEY.encode(), json.dumps(_header_digest(meta_rows, condition_rows)).encode()))
         with self.connection:
             self.connection.executescript(f"""
                 CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT);
                 CREATE TABLE conditions (condition INTEGER PRIMARY KEY, temperature REAL,
-                                         centres TEXT, springs TEXT);
+                                         centres TEXT, springs TEXT, solute_scale REAL);
                 CREATE TABLE cycles (cycle INTEGER PRIMARY KEY, time REAL, production INTEGER,
                                      checksum INTEGER, reduced_checksum INTEGER);
                 CREATE TABLE samples (cycle INTEGER, walker INTEGER, condition INTEGER,
-                                      potential REAL, volume REAL{columns}, reduced BLOB,
+                                      potential REAL, volume REAL, solute_cross REAL, solute_inner REAL{columns},
+                                      reduced BLOB,
                                       PRIMARY KEY (cycle, walker));
                 CREATE TABLE swaps (cycle INTEGER, condition_i INTEGER, condition_j INTEGER,
                                     attempts INTEGER, accepted INTEGER);
@@ -92,41 +115,50 @@ class Ledger:
             """)
             self.connection.executemany("INSERT INTO meta VALUES (?, ?)",
                                         [(k.decode(), v.decode()) for k, v in meta_rows])
-            self.connection.executemany("INSERT INTO conditions VALUES (?, ?, ?, ?)",
-                                        [(i, t, c.decode(), s.decode()) for i, t, c, s in condition_rows])
+            self.connection.executemany("INSERT INTO conditions VALUES (?, ?, ?, ?, ?)",
+                                        [(i, t, c.decode(), s.decode(), scale) for i, t, c, s, scale in condition_rows])
 
     def record_cycle(self, cycle, *, time, production, condition_r, potential_r, volume_r,
-                     values_rc, u_kr, swaps=(), frames=()):
+                     values_rc, u_kr, solute_r2=None, swaps=(), frames=()):
         """Store one complete cycle in one transaction.
 
         values_rc : ndarray, shape (n_walkers, n_coordinates), nm or rad
         u_kr : ndarray, shape (n_conditions, n_walkers), kT
+        solute_r2 : ndarray, shape (n_walkers, 2), kJ/mol: (E_cross, E_inner); None: zeros
         swaps : iterable of (condition_i, condition_j, attempts, accepted)
         frames : iterable of (walker, frame index, crc32 of the frame's bytes)
         """
         n_walkers = len(condition_r)
+        solute_rt2 = None if solute_r2 is None else np.asarray(solute_r2, dtype=float).reshape(n_walkers, 1, 2)
         self.record_cycles(
             cycle, time_t=[time], production_t=[production], condition_rt=np.reshape(condition_r, (n_walkers, 1)),
             potential_rt=np.reshape(potential_r, (n_walkers, 1)),
             volume_rt=np.array([[_as_float(v)] for v in volume_r]),
             values_rtc=np.asarray(values_rc, dtype=float).reshape(n_walkers, 1, -1),
-            u_krt=np.asarray(u_kr, dtype=float)[:, :, None],
+            u_krt=np.asarray(u_kr, dtype=float)[:, :, None], solute_rt2=solute_rt2,
             swaps=[(cycle, *s) for s in swaps], frames=[(walker, cycle, *rest) for walker, *rest in frames])
 
     def record_cycles(self, first, *, time_t, production_t, condition_rt, potential_rt, volume_rt,
-                      values_rtc, u_krt, swaps=(), frames=()):
+                      values_rtc, u_krt, solute_rt2=None, swaps=(), frames=()):
         """Store cycles ``first`` .. ``first + n_cycles - 1`` in one transaction, with checksums.
 
-        Arrays as in :class:`LedgerData` (volume NaN: none); swaps : (cycle, condition_i,
-        condition_j, attempts, accepted) rows; frames : (walker, cycle, frame index, crc32) rows.
+        Arrays as in :class:`LedgerData` (volume NaN: none; solute_rt2 None: zeros); swaps :
+        (cycle, condition_i, condition_j, attempts, accepted) rows; frames : (walker, cycle,
+        frame index, crc32) rows.
         """
         condition_rt = np.asarray(condition_rt)
         n_walkers, n_cycles = condition_rt.shape
         cycle_t = np.arange(first, first + n_cycles, dtype=float)
+        solute_n2 = np.zeros((n_cycles * n_walkers, 2)) if solute_rt2 is None else \
+            np.asarray(solute_rt2, dtype=float).transpose(1, 0, 2).reshape(n_cycles * n_walkers, 2)
+        if not self.has_solute_columns:
+            if np.any(solute_n2):
+                raise ValueError(f"{self.path}: a ledger of format {self.format} cannot hold solute parts")
+            solute_n2 = solute_n2[:, :0]
         numbers = np.concatenate([   # rows in (cycle, walker) order, columns as the reader selects them
             np.stack([np.repeat(cycle_t, n_walkers), np.tile(np.arange(n_walkers, dtype=float), n_cycles),
                       condition_rt.T.ravel().astype(float), np.asarray(potential_rt, dtype=float).T.ravel(),
-                      np.asarray(volume_rt, dtype=float).T.ravel()], axis=1),
+                      np.asarray(volume_rt, dtype=float).T.ravel()], axis=1), solute_n2,
             np.asarray(values_rtc, dtype=float).transpose(1, 0, 2).reshape(n_cycles * n_walkers, -1)], axis=1)
         u_nk = np.ascontiguousarray(np.asarray(u_krt, dtype="<f8").transpose(2, 1, 0).reshape(-1, len(u_krt)))
         swap_rows = np.array(list(swaps), dtype=float).reshape(-1, 5)
@@ -139,7 +171,7 @@ class Ledger:
                                                swap_rows[:, 0].astype(np.int64) - first, n_cycles))
         reduced_t = checksums.compute_row_checksums(np.column_stack([numbers[:, 1], u_nk]), checksums.REDUCED) \
             .reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
-        placeholders = ", ".join("?" * (6 + len(self.coordinate_names)))
+        placeholders = ", ".join("?" * (6 + solute_n2.shape[1] + len(self.coordinate_names)))
         samples = [(int(row[0]), int(row[1]), int(row[2]), *map(_none_for_nan, row[3:]), u.tobytes())
                    for row, u in zip(numbers, u_nk)]
         with self.connection:
@@ -159,7 +191,7 @@ class Ledger:
             self.connection.executemany("INSERT OR REPLACE INTO meta VALUES (?, ?)",
                                         [(key, json.dumps(value)) for key, value in changes.items()])
             meta_rows = [(k.encode(), v.encode()) for k, v in self.connection.execute("SELECT key, value FROM meta")]
-            condition_rows = [(i, t, c.encode(), s.encode()) for i, t, c, s in
+            condition_rows = [(i, t, c.encode(), s.encode(), *scale) for i, t, c, s, *scale in
                               self.connection.execute("SELECT * FROM conditions ORDER BY condition")]
             self.connection.execute("UPDATE meta SET value = ? WHERE key = ?",
                                     (json.dumps(_header_digest(meta_rows, condition_rows)), _HEADER_KEY))
@@ -209,7 +241,9 @@ class LedgerData:
     umbrella_coordinates : tuple of str, the coordinates umbrellas act on, in ladder-axis order
     cycle_t, time_t, production_t : ndarray, shape (n_cycles,)
     condition_rt : ndarray of int, shape (n_walkers, n_cycles)
-    potential_rt, volume_rt : ndarray, shape (n_walkers, n_cycles), kJ/mol and nm³ (NaN: none)
+    potential_rt, volume_rt : ndarray, shape (n_walkers, n_cycles), kJ/mol (λ = 1) and nm³ (NaN: none)
+    solute_rt2 : ndarray, shape (n_walkers, n_cycles, 2), kJ/mol: the solute parts (E_cross,
+        E_inner) of each sample (boost.solute_parts), zeros without solute scaling
     values_rtc : ndarray, shape (n_walkers, n_cycles, n_coordinates), nm or rad
     u_krt : ndarray, shape (n_conditions, n_walkers, n_cycles), kT
     swaps : ndarray, shape (n_swap_rows, 5): cycle, condition_i, condition_j, attempts, accepted
@@ -228,6 +262,7 @@ class LedgerData:
     condition_rt: np.ndarray
     potential_rt: np.ndarray
     volume_rt: np.ndarray
+    solute_rt2: np.ndarray
     values_rtc: np.ndarray
     u_krt: np.ndarray
     swaps: np.ndarray
@@ -340,15 +375,18 @@ def _verified_header(connection, path):
                            f"{path}: is damaged (its header digest is missing); start a new run folder.")
     try:
         digest_ok = json.loads(recorded.decode()) == _header_digest(
-            meta_rows, [(i, t, bytes(c), bytes(s)) for i, t, c, s in condition_rows])
-    except (ValueError, TypeError, UnicodeDecodeError):
+            meta_rows, [(i, t, bytes(c), bytes(s), *scale) for i, t, c, s, *scale in condition_rows])
+        recorded_format = json.loads(dict(meta_rows)[b"ledger_format"].decode())
+        digest_ok = digest_ok and all(len(row) == (5 if recorded_format >= SOLUTE_FORMAT else 4)
+                                      for row in condition_rows)
+    except (ValueError, TypeError, UnicodeDecodeError, KeyError):
         digest_ok = False
     if not digest_ok:
         raise LedgerDamage(f"{path}: is damaged (its header - conditions and run settings - fails its digest); "
                            "no number can be trusted from it: start a new run folder.")
     metadata = {k.decode(): json.loads(v.decode()) for k, v in meta_rows if k != _HEADER_KEY.encode()}
-    conditions = tuple(Condition(i, t, tuple(json.loads(c.decode())), tuple(json.loads(s.decode())))
-                       for i, t, c, s in condition_rows)
+    conditions = tuple(Condition(i, t, tuple(json.loads(c.decode())), tuple(json.loads(s.decode())),
+                                 *[float(x) for x in scale]) for i, t, c, s, *scale in condition_rows)
     return metadata, conditions
 
 
@@ -369,14 +407,15 @@ def _read(connection, path, metadata, conditions, with_reduced, *, keep_arrays=T
         "CASE WHEN typeof(reduced_checksum) = 'integer' THEN reduced_checksum ELSE 0 END "
         "FROM cycles ORDER BY cycle"), 2, path, dtype=np.int64)
     n_cycles, n_walkers, n_conditions = len(cycles), metadata["n_walkers"], len(conditions)
+    n_parts = 2 if metadata["ledger_format"] >= SOLUTE_FORMAT else 0
     check = _Checks(cycles, stored, with_reduced)
-    table = np.zeros((n_cycles if keep_arrays else 0, n_walkers, 3 + len(names)))
+    table = np.zeros((n_cycles if keep_arrays else 0, n_walkers, 3 + n_parts + len(names)))
     u_trk = np.zeros((n_cycles if with_reduced and keep_arrays else 0, n_walkers, n_conditions))
-    quoted = "".join(f', "{name}"' for name in names)
+    quoted = (", solute_cross, solute_inner" if n_parts else "") + "".join(f', "{name}"' for name in names)
     reduced = ", reduced" if with_reduced else ""
     cursor = connection.execute(f"SELECT cycle, walker, condition, potential, volume{quoted}{reduced} "
                                 f"FROM samples WHERE cycle < ? ORDER BY cycle, walker", (n_cycles,))
-    width = 5 + len(names)
+    width = 5 + n_parts + len(names)
     while rows := cursor.fetchmany(20000):   # streamed: memory stays that of the arrays
         numbers = _numbers([row[:width] for row in rows] if with_reduced else rows, width, path)
         t, r = check.place(numbers[:, 0], n_cycles), check.place(numbers[:, 1], n_walkers)
@@ -402,7 +441,9 @@ def _read(connection, path, metadata, conditions, with_reduced, *, keep_arrays=T
         cycle_t=cycles[:, 0].astype(int), time_t=cycles[:, 1], production_t=cycles[:, 2].astype(bool),
         condition_rt=table[:, :, 0].T.astype(int), potential_rt=np.ascontiguousarray(table[:, :, 1].T),
         volume_rt=np.ascontiguousarray(table[:, :, 2].T),
-        values_rtc=np.ascontiguousarray(table[:, :, 3:].transpose(1, 0, 2)),
+        solute_rt2=np.ascontiguousarray(table[:, :, 3:3 + n_parts].transpose(1, 0, 2)) if n_parts else
+        np.zeros((n_walkers, n_cycles, 2)),
+        values_rtc=np.ascontiguousarray(table[:, :, 3 + n_parts:].transpose(1, 0, 2)),
         u_krt=np.ascontiguousarray(u_trk.transpose(2, 1, 0)),
         swaps=swaps.astype(int), metadata=metadata, frame_crcs=_frame_crcs(connection, n_walkers, n_cycles))
     return data, n_cycles, first_bad

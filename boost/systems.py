@@ -396,12 +396,11 @@ def _finish(system, topology, positions, title, coordinates_place):
                              f"system has {n_particles} particles.")
     if not np.all(np.isfinite(positions)):
         raise InputError(f"{coordinates_place}: the coordinates are not all finite numbers.")
-    box = None
+    box = vectors = None    # no box: a box the system does not use would only mislead later readers
     if system.usesPeriodicBoundaryConditions():
-        vectors = system.getDefaultPeriodicBoxVectors()
-        box = _box_array_of(vectors)
-    else:
-        vectors = None  # a box the system does not use would only mislead later readers
+        box = _box_array_of(system.getDefaultPeriodicBoxVectors())
+        # one Quantity of Vec3 rows, as OpenMM's own readers set it (the PDB writer needs that form)
+        vectors = [openmm.Vec3(*row) for row in box] * unit.nanometer
     topology.setPeriodicBoxVectors(vectors)
     return BuiltSystem(system=system, topology=topology, positions=positions,
                        box_vectors=box, title=title)

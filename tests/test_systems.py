@@ -728,3 +728,17 @@ def test_bad_peptide_and_bad_include_dir(tmp_path):
 def test_system_value_of_the_wrong_kind():
     with pytest.raises(ProtocolError, match=r"protocol\.yaml: system must be a system file"):
         _build(5, ".")
+
+
+def test_a_periodic_topology_writes_a_pdb_that_mdtraj_reads_with_its_box(solvated, tmp_path):
+    # the run folder's topology.pdb is written by OpenMM's PDB writer; mdtraj reads the box
+    # back from its CRYST1 record (reference library: mdtraj, unit cell in nm)
+    import mdtraj
+
+    name, built = solvated
+    path = tmp_path / "topology.pdb"
+    with open(path, "w") as handle:
+        app.PDBFile.writeFile(built.topology, built.positions * unit.nanometer, handle)
+    traj = mdtraj.load(str(path))
+    assert traj.n_atoms == built.topology.getNumAtoms()
+    assert np.allclose(traj.unitcell_vectors[0], built.box_vectors, atol=1e-3)

@@ -33,6 +33,11 @@ MAX_TITLE_LENGTH = 200
 #: Bytes of a protocol or system YAML file. A protocol that writes out two axes of
 #: MAX_COUNT centres and springs as lists is under 1 MB; most are a few kB.
 MAX_SPEC_BYTES = 4 * 2**20
+#: An atom index in a coordinate: OpenMM numbers particles with 32-bit signed integers.
+MAX_ATOM_INDEX = 2**31 - 1
+#: The protocol's seed: numpy's generators take it whole; 64 bits are more seeds than any study
+#: needs, and a number of thousands of digits could not even be printed back.
+MAX_SEED = 2**64 - 1
 
 
 def check_conditions(node, n_temperatures, window_counts, *, n_scales=1):

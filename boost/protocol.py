@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from .exceptions import ProtocolError
-from .limits import (MAX_COUNT, MAX_SPEC_BYTES, MAX_SWAP_ATTEMPTS, MAX_TITLE_LENGTH, check_conditions,
+from .limits import (MAX_ATOM_INDEX, MAX_COUNT, MAX_SEED, MAX_SPEC_BYTES, MAX_SWAP_ATTEMPTS, MAX_TITLE_LENGTH, check_conditions,
                      check_swap_proposals)
 from .solute_spec import read_solute_spec
 from .spec import Node, parse_yaml, read_text
@@ -242,7 +242,7 @@ def parse_protocol(text, path):
     run = _read_run(root.get("run"), timestep)
     return Protocol(
         path=path, text=text, sha256=hashlib.sha256(text.encode()).hexdigest(),
-        title=_read_title(root), seed=root.get("seed").integer(minimum=0),
+        title=_read_title(root), seed=root.get("seed").integer(minimum=0, maximum=MAX_SEED),
         temperature=temperature, timestep=timestep,
         friction=root.get("friction", "1/ps").quantity("rate", positive=True),
         pressure=pressure, system=read_system_spec(root.get("system"), path.parent), coordinates=coordinates,
@@ -308,7 +308,7 @@ def _read_point(node):
 
 
 def _index(node):
-    return node.integer(minimum=0)
+    return node.integer(minimum=0, maximum=MAX_ATOM_INDEX)
 
 
 def _read_combination(name, node, known):

@@ -168,6 +168,10 @@ def load_yaml(path, what="protocol"):
     return parse_yaml(read_text(path, what, max_bytes=MAX_SPEC_BYTES), Path(path))
 
 
+#: Largest whole number a key takes when it names no bound of its own (a signed 64-bit integer).
+LARGEST_INTEGER = 2**63 - 1
+
+
 class Node:
     """One value of a YAML document, with its file and key path for error messages."""
 
@@ -280,6 +284,8 @@ class Node:
             self.fail(expected)
         if (minimum is not None and self.value < minimum) or (maximum is not None and self.value > maximum):
             self.fail(expected)
+        if maximum is None and abs(self.value) > LARGEST_INTEGER:    # what SQLite and numpy hold
+            self.fail(f"{expected} and of at most {LARGEST_INTEGER} in size")
         return self.value
 
     def number(self):

@@ -237,3 +237,19 @@ def test_run_with_a_control_character_in_the_title_writes_nothing(write_protocol
     stderr = assert_one_line_exit_2(boost("run", str(path), "--quiet", cwd=tmp_path), r"title must be printable")
     assert "\x1b" not in stderr and "\r" not in stderr and "owned" not in stderr
     assert sorted(p.name for p in tmp_path.iterdir()) == ["protocol.yaml"]
+
+
+def test_an_atom_index_and_a_seed_past_their_bounds_are_refused():
+    from boost.limits import MAX_ATOM_INDEX, MAX_SEED
+
+    at_most = parse_protocol(double_well_protocol(seed=str(MAX_SEED),
+                                                  coordinates={"x": f"{{position: {MAX_ATOM_INDEX}, axis: x}}"}),
+                             "p.yaml")
+    assert at_most.seed == MAX_SEED
+    refused(double_well_protocol(seed=str(MAX_SEED + 1)), r"seed must be a whole number of at least 0 and at most")
+    refused(double_well_protocol(coordinates={"x": f"{{position: {MAX_ATOM_INDEX + 1}, axis: x}}"}),
+            r"coordinates.x.position must be a whole number of at least 0 and at most 2147483647")
+    # any other whole number is held to a signed 64-bit integer (hex literals may be long)
+    refused(double_well_protocol(run={"retries": "0x1" + "0" * 5000}),
+            r"run.retries must be a whole number of at least 0 and of at most 9223372036854775807 in size. "
+            r"Got <a whole number of about 6021 digits> instead")

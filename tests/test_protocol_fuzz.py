@@ -434,7 +434,7 @@ REGRESSIONS = [
      r"analysis\.bins\.x must be a range of finite width"),
     (DOUBLE_WELL + "umbrella:\n  x: {centres: {from: -1e308 nm, to: 1e308 nm, count: 3}, spring: 1 kJ/mol/nm**2}\n",
      r"umbrella\.x\.centres must be a range of finite width"),
-    (_dw("seed: 5", "seed: " + _LAUGHS), r"seed must be a whole number of at least 0\. Got \[\['a'"),
+    (_dw("seed: 5", "seed: " + _LAUGHS), r"seed must be a whole number of at least 0 and at most 18446744073709551615\. Got \[\['a'"),
     (_dw("protocol: 1", "protocol: true"), r"protocol must be the schema version 1\. Got True"),
     ("[" * 1000 + "]" * 1000, r"is nested too deeply to read"),
     (DOUBLE_WELL + f"? {_HEX}\n: 1\n? {_HEX}\n: 2\n", r"duplicate key <a whole number of about 6021 digits>"),

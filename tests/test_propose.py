@@ -368,15 +368,16 @@ def test_planned_ladder_measures_the_predicted_acceptance(tmp_path):
 
 
 def _with_production(protocol, ps):
-    """``protocol`` with a production of ``ps`` (dumped and read back, so text and hash agree)."""
+    """``protocol`` with a production of ``ps`` for every condition, run whole (no run.builds_on;
+    dumped and read back, so text and hash agree)."""
     from dataclasses import replace
 
     from boost.protocol import parse_protocol
     from boost.protocol_dump import dump_protocol
 
     cycles = round(ps / (protocol.run.steps_per_cycle * protocol.timestep))
-    return parse_protocol(dump_protocol(replace(protocol, run=replace(protocol.run, production_cycles=cycles))),
-                          protocol.path)
+    run = replace(protocol.run, production_cycles=cycles, builds_on=None)
+    return parse_protocol(dump_protocol(replace(protocol, run=run)), protocol.path)
 
 
 def _coarse_double_well(folder):
@@ -425,6 +426,7 @@ def test_refined_double_well_windows_add_only_between_poor_pairs(tmp_path):
     refined, _ = _plan(coarse, tmp_path, source=tmp_path / "finished", refine=True, name="refined.yaml")
     old, new = original.umbrella[0].centres, refined.umbrella[0].centres
     assert set(old) <= set(new) and len(new) > len(old)
+    assert refined.source_folder.resolve() == (tmp_path / "finished").resolve()    # it builds on the run
     poor = [(old[i], old[i + 1]) for i, value in enumerate(before) if value < 0.05 * MARGIN]
     for c in set(new) - set(old):
         assert any(a < c < b for a, b in poor)

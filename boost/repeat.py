@@ -179,14 +179,7 @@ def _protocol_of_run(run):
     if not copy.is_file():
         raise RunFolderError(f"{run}: is a folder but not a run folder (no {PROTOCOL}); "
                              "give a run folder or a protocol file.")
-    text = read_text(copy, "protocol")
-    provenance = _read_provenance(run)
-    place = copy
-    if provenance.get("protocol_file"):
-        place = Path(provenance["protocol_file"])
-        if provenance.get("protocol_folder"):
-            place = Path(provenance["protocol_folder"]) / place.name
-    return parse_protocol(text, place)
+    return parse_protocol(read_text(copy, "protocol"), RunFolder(run).original_protocol_place())
 
 
 def _read_provenance(run):

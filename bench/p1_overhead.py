@@ -75,7 +75,7 @@ def cost_breakdown(scheduler, plan, folder):
     assignment = list(range(n))
     rows.append(("driver: reduced potentials u_kr", per_call_cpu_us(
         lambda: scheduler._evaluate(reports, assignment, 0), 300)))
-    values_rc, u_kr = scheduler._evaluate(reports, assignment, 0)
+    values_rc, solute_r2, u_kr = scheduler._evaluate(reports, assignment, 0)
     rng = np.random.default_rng(1)
     rows.append(("driver: swap attempts", per_call_cpu_us(lambda: scheduler._swap(u_kr, assignment, 0, rng), 300)))
     swapped = [[r ^ 1 for r in range(n)], list(range(n))]     # every walker changes temperature
@@ -88,7 +88,7 @@ def cost_breakdown(scheduler, plan, folder):
     rows.append(("driver: ledger transaction (SQLite)", per_call_cpu_us(lambda: ledger.record_cycle(
         next(counter), time=0.0, production=True, condition_r=assignment,
         potential_r=[o.potential for o in reports], volume_r=[None] * n, values_rc=values_rc, u_kr=u_kr,
-        swaps=[(0, 1, 1, 0)]), 300)))
+        solute_r2=solute_r2, swaps=[(0, 1, 1, 0)]), 300)))
     ledger.close()
     checkpoint_every = plan.protocol.run.checkpoint_every
     rows.append((f"driver: checkpoint (every {checkpoint_every} cycles, per cycle)", per_call_cpu_us(

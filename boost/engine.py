@@ -23,6 +23,8 @@ from .solute_scaling import compute_solute_parts, set_solute_scale
 
 BIAS_GROUP = 31
 PHYSICAL_GROUPS = set(range(31))
+#: PHYSICAL_GROUPS as the bit mask getState also takes (a set is folded into one on every call)
+PHYSICAL_MASK = (1 << BIAS_GROUP) - 1
 _MAX_SEED = 2**30
 
 
@@ -154,6 +156,24 @@ def shares_random_stream(platform_name, system):
     return platform_name == "Reference" or any(isinstance(f, BAROSTATS) for f in system.getForces())
 
 
+def vectors(state, kind, n_atoms):
+    """Positions (nm) or velocities (nm/ps) that ``state`` holds (``kind``: openmm.State.Positions
+    or .Velocities), as a plain float64 array, shape (n_atoms, 3).
+
+    The very numbers State.getPositions(asNumpy=True) returns, without the unit wrapper around
+    them (which value_in_unit then copies): a tenth of the cost, and for a walker of a few dozen
+    atoms that wrapper cost more than its energy evaluation (bench/p1_overhead.py).
+    """
+    array = np.empty((n_atoms, 3))
+    state._getVectorAsNumpy(kind, array)
+    return array
+
+
+def potential_energy(state):
+    """The potential energy ``state`` holds, in kJ/mol (OpenMM's unit for it), as a float."""
+    return state.getPotentialEnergy()._value
+
+
 @dataclass(frozen=True)
 class Observation:
     """What a walker reports after propagating: energies without umbrellas."""
@@ -191,6 +211,7 @@ class Walker:
         self.umbrella_names = umbrella_names
         self.solute = solute
         self.uses_pbc = system.usesPeriodicBoundaryConditions()
+        self.n_atoms = system.getNumParticles()
         barostats = [f for f in system.getForces() if isinstance(f, BAROSTATS)]
         self.barostat_temperatures = sorted({type(f).Temperature() for f in barostats})   # parameter names
         for force in barostats:
@@ -240,9 +261,8 @@ class Walker:
         old = self.condition
         # plain numbers in OpenMM's own units (nm/ps, K): the same values without unit objects
         if old is not None and old.temperature != condition.temperature:
-            velocities = self.context.getState(getVelocities=True).getVelocities(asNumpy=True)
-            scale = np.sqrt(condition.temperature / old.temperature)
-            self.context.setVelocities(velocities.value_in_unit(unit.nanometer / unit.picosecond) * scale)
+            velocities = vectors(self.context.getState(getVelocities=True), openmm.State.Velocities, self.n_atoms)
+            self.context.setVelocities(velocities * np.sqrt(condition.temperature / old.temperature))
         self.integrator.setTemperature(condition.temperature)
         for name in self.barostat_temperatures:
             self.context.setParameter(name, condition.temperature)
@@ -268,11 +288,11 @@ class Walker:
     def observe(self):
         # Without umbrellas every group is physical; asking for all of them spares OpenMM
         # a recomputation of the forces at the next step.
-        groups = PHYSICAL_GROUPS if self.umbrella_names else -1
+        groups = PHYSICAL_MASK if self.umbrella_names else -1
         solute = None
         if self.solute is None:
             state = self.context.getState(getEnergy=True, getPositions=True, groups=groups)
-            potential = state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole)
+            potential = potential_energy(state)
         else:
             # Three energies at other solute scales; the parameters come back bit for bit and
             # no random number is drawn, so the walker's trajectory and its place in a shared
@@ -280,12 +300,12 @@ class Walker:
             parts = compute_solute_parts(self.solute, self.context, groups=PHYSICAL_GROUPS)
             potential, solute = float(parts.sum()), (float(parts[1]), float(parts[2]))
             state = self.context.getState(getPositions=True)
-        positions = state.getPositions(asNumpy=True).value_in_unit(unit.nanometer)
+        positions = vectors(state, openmm.State.Positions, self.n_atoms)
         box = volume = None
         if self.uses_pbc:
             box = state.getPeriodicBoxVectors(asNumpy=True).value_in_unit(unit.nanometer)
             volume = float(np.linalg.det(box))
-        return Observation(potential, np.asarray(positions), box, volume, solute)
+        return Observation(potential, positions, box, volume, solute)
 
     def checkpoint(self):
         """OpenMM checkpoint bytes (positions, velocities, box, parameters, RNG states)."""

@@ -9,7 +9,8 @@ from openmm import unit
 
 from boost.conditions import Condition, compute_reduced_potentials
 from boost.coordinates import compute_coordinate_values_many
-from boost.engine import BIAS_GROUP, PlatformChoice, Walker, derive_seeds, prepare_system
+from boost.engine import (BIAS_GROUP, PHYSICAL_GROUPS, PlatformChoice, Walker, derive_seeds, prepare_system,
+                          vectors)
 from boost.protocol import load_protocol, resolve_coordinates
 from boost.systems import build_system
 from boost.units import beta
@@ -75,6 +76,22 @@ def test_reported_potential_excludes_umbrellas_but_includes_flat_bottom(alanine)
     walker = Walker(0, system, names, built.positions, None, condition, timestep=0.002, friction=1.0,
                     platform=PlatformChoice("Reference", {}), seed=7)
     assert walker.observe().potential == pytest.approx(_total_energy(walker), abs=1e-9)
+
+
+def test_observed_numbers_are_openmms_own_bit_for_bit(alanine):
+    # Cross-check of two read-outs of one State: the walker's (no unit objects) and OpenMM's
+    # public getters with value_in_unit; bit for bit, since the ledger stores these numbers.
+    protocol, built, coordinates, system, names = alanine
+    walker = Walker(0, system, names, built.positions, None, Condition(0, 300.0, (0.0, 0.0), (150.0, 50.0)),
+                    timestep=0.002, friction=1.0, platform=PlatformChoice("Reference", {}), seed=7)
+    walker.draw_velocities(3)
+    walker.step(20)
+    observation = walker.observe()
+    state = walker.context.getState(getEnergy=True, getPositions=True, getVelocities=True, groups=PHYSICAL_GROUPS)
+    assert observation.potential == state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole)
+    assert np.array_equal(observation.positions, state.getPositions(asNumpy=True).value_in_unit(unit.nanometer))
+    assert np.array_equal(vectors(state, openmm.State.Velocities, system.getNumParticles()),
+                          state.getVelocities(asNumpy=True).value_in_unit(unit.nanometer / unit.picosecond))
 
 
 def test_temperature_change_rescales_velocities(alanine):

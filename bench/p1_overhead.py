@@ -64,6 +64,8 @@ def cost_breakdown(scheduler, plan, folder):
     walker = host.walkers[0]
     steps = plan.protocol.run.steps_per_cycle
     rows = [("MD: integrator.step, all walkers", per_call_cpu_us(lambda: walker.integrator.step(steps), 20) * n)]
+    rows.append(("worker: each walker's own random stream around its steps (Walker.step(0))",
+                 per_call_cpu_us(lambda: walker.step(0), 300) * n))
     rows.append(("worker: getState + numpy positions (observe)", per_call_cpu_us(walker.observe, 300) * n))
     observations = {r: w.observe() for r, w in host.walkers.items()}
     rows.append(("worker: coordinate values in numpy (all walkers at once)", per_call_cpu_us(
@@ -78,10 +80,15 @@ def cost_breakdown(scheduler, plan, folder):
     values_rc, solute_r2, u_kr = scheduler._evaluate(reports, assignment, 0)
     rng = np.random.default_rng(1)
     rows.append(("driver: swap attempts", per_call_cpu_us(lambda: scheduler._swap(u_kr, assignment, 0, rng), 300)))
-    swapped = [[r ^ 1 for r in range(n)], list(range(n))]     # every walker changes temperature
+    # every walker changes temperature, taken as at its next step (Walker.step); worst case
+    swapped = [[plan.conditions[r ^ 1] for r in range(n)], list(plan.conditions[:n])]
     flips = iter(range(10**9))
-    rows.append(("worker: all walkers to new conditions (assign; worst case)", per_call_cpu_us(
-        lambda: host.assign(dict(enumerate(swapped[next(flips) % 2]))), 300)))
+
+    def all_to_new_conditions():
+        for w, condition in zip(host.walkers.values(), swapped[next(flips) % 2]):
+            w._apply(condition)
+    rows.append(("worker: all walkers to new conditions (at their next step; worst case)", per_call_cpu_us(
+        all_to_new_conditions, 300)))
     ledger = Ledger(folder / "breakdown.sqlite", coordinate_names=tuple(plan.coordinates))
     ledger.create(plan.conditions, {"benchmark": True})
     counter = iter(range(10**9))

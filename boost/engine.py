@@ -277,9 +277,13 @@ class Walker:
         with self._own_stream():
             self.context.setVelocitiesToTemperature(self.condition.temperature * unit.kelvin, seed)
 
-    def step(self, n_steps):
+    def step(self, n_steps, conditions=()):
+        """Move to each of ``conditions`` in turn (see apply), then take ``n_steps``: one visit
+        to the walker's random stream for both."""
         try:
             with self._own_stream():
+                for condition in conditions:
+                    self._apply(condition)
                 self.integrator.step(n_steps)
         except openmm.OpenMMException as err:
             raise SimulationError(f"walker {self.index} (condition {self.condition.index}) failed in "

@@ -69,14 +69,17 @@ class WalkerHost:
                                   timestep=setup.timestep, friction=setup.friction, platform=setup.platform,
                                   seed=setup.seeds[r], solute=setup.solute)
                         for r in indices}
+        self.waiting = {}     # walker -> conditions it takes, in turn, before its next step (see assign)
 
     def minimise(self):
+        self._settle()
         for walker in self.walkers.values():
             walker.minimise()
         return {}
 
     def draw_velocities(self, seeds):
         """seeds: dict walker -> seed (only walkers of this host are touched)."""
+        self._settle()
         for r, seed in seeds.items():
             if r in self.walkers:
                 self.walkers[r].draw_velocities(seed)
@@ -85,7 +88,7 @@ class WalkerHost:
     def propagate(self, n_steps, with_positions):
         observations = {}
         for r, walker in self.walkers.items():
-            walker.step(n_steps)
+            walker.step(n_steps, self.waiting.pop(r, ()))
             observations[r] = walker.observe()
         finite = {r: bool(np.isfinite(o.potential) and np.all(np.isfinite(o.positions))
                           and (o.solute is None or np.all(np.isfinite(o.solute))))
@@ -111,16 +114,34 @@ class WalkerHost:
         return dict(zip(walkers, values))
 
     def assign(self, conditions):
-        """conditions: dict walker -> condition index."""
+        """conditions: dict walker -> condition index.
+
+        A walker takes a new condition at its next step, in the same visit to its random
+        stream (Walker.step), or before anything else is done to it: one visit instead of two.
+        """
         for r, k in conditions.items():
-            if r in self.walkers and self.walkers[r].condition.index != k:
-                self.walkers[r].apply(self.setup.conditions[k])
+            if r in self.walkers and self._held(r).index != k:
+                self.waiting.setdefault(r, []).append(self.setup.conditions[k])
         return {}
 
+    def _held(self, r):
+        """The condition walker r holds once the waiting ones are taken."""
+        waiting = self.waiting.get(r)
+        return waiting[-1] if waiting else self.walkers[r].condition
+
+    def _settle(self):
+        """Every waiting condition taken now."""
+        for r, conditions in self.waiting.items():
+            for condition in conditions:
+                self.walkers[r].apply(condition)
+        self.waiting.clear()
+
     def checkpoints(self):
+        self._settle()
         return {r: walker.checkpoint() for r, walker in self.walkers.items()}
 
     def restore(self, states, conditions):
+        self.waiting.clear()
         for r, walker in self.walkers.items():
             walker.restore(states[r], self.setup.conditions[conditions[r]])
         return {}

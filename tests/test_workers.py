@@ -12,7 +12,7 @@ from boost.cores import core_sets
 from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
 from boost.store import read_ledger
-from boost.workers import spread
+from boost.workers import WalkerHost, spread
 
 # Four walkers that swap temperatures, so any difference in any walker shows everywhere.
 LADDER = """\
@@ -146,3 +146,36 @@ def test_a_rank_that_cannot_build_its_walkers_stops_every_rank_with_one_line(tmp
     result = subprocess.run(command, cwd=tmp_path, capture_output=True, text=True, timeout=120)  # no hang
     assert result.returncode != 0
     assert f"rank {failing} could not build its walkers" in result.stderr and "Traceback" not in result.stderr
+
+
+def _ladder_hosts(tmp_path, count):
+    from boost.plan import make_plan
+    from boost.scheduler import Scheduler
+
+    (tmp_path / "p.yaml").write_text(LADDER.replace("PLATFORM", "Reference"))
+    scheduler = Scheduler(make_plan(load_protocol(tmp_path / "p.yaml")), tmp_path / "run", progress=False)
+    setup = scheduler._walker_setup()
+    hosts = [WalkerHost(setup, range(4)) for _ in range(count)]
+    for host in hosts:
+        host.draw_velocities(dict(enumerate(setup.seeds)))
+        host.propagate(50, False)
+    return setup, hosts
+
+
+def test_an_assigned_condition_is_taken_as_if_applied_at_once(tmp_path):
+    # A host lets a walker take a new condition at its next step (or before a checkpoint);
+    # the trajectory must be the one a walker moved at once follows, bit for bit.
+    setup, (waiting, at_once) = _ladder_hosts(tmp_path, 2)
+    swapped = {0: 1, 1: 0, 2: 3, 3: 2}
+    waiting.assign(swapped)
+    for r, k in swapped.items():
+        at_once.walkers[r].apply(setup.conditions[k])
+    for _ in range(2):
+        a, b = waiting.propagate(50, True), at_once.propagate(50, True)
+        assert all(np.array_equal(a[r].positions, b[r].positions) and a[r].potential == b[r].potential
+                   for r in range(4))
+    waiting.assign({0: 0, 1: 1})
+    at_once.walkers[0].apply(setup.conditions[0])
+    at_once.walkers[1].apply(setup.conditions[1])
+    assert waiting.checkpoints() == at_once.checkpoints()
+    assert [w.condition.index for w in waiting.walkers.values()] == [0, 1, 3, 2]

@@ -40,10 +40,20 @@ def compute_row_checksums(rows, table):
     Returns ndarray of uint64, shape (n_rows,).
     """
     rows = np.atleast_2d(rows)
-    columns = np.arange(rows.shape[1], dtype=np.uint64)
-    salt = _mix((columns + np.uint64(1 + 64 * table)) * _GOLDEN)
+    return mix_words(rows, column_salts(rows.shape[1], table)).sum(axis=1, dtype=np.uint64)
+
+
+def column_salts(n_columns, table):
+    """The salt each column's numbers are mixed with: uint64, shape (n_columns,)."""
+    columns = np.arange(n_columns, dtype=np.uint64)
+    return _mix((columns + np.uint64(1 + 64 * table)) * _GOLDEN)
+
+
+def mix_words(numbers, salts):
+    """Each number's 64 bits mixed with its salt (arrays of one shape, or salts broadcast over
+    rows); a row's checksum is the sum of its mixed words."""
     with np.errstate(over="ignore"):
-        return _mix(_words(rows) ^ salt).sum(axis=1, dtype=np.uint64)
+        return _mix(_words(numbers) ^ salts)
 
 
 def sum_by_cycle(checksums, cycle_of_row, n_cycles):

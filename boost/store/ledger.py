@@ -32,6 +32,7 @@ from ..conditions import Condition
 from ..exceptions import RunFolderError
 from . import checksums
 from .folder import LEDGER
+from . import records
 
 #: Ledger layout version; 2 added checksums, the header digest and the protocol text; 3 the
 #: solute scale of each condition and the solute parts of each sample.
@@ -62,10 +63,6 @@ def _header_digest(meta_rows, condition_rows):
         solute = f"|{scale[0]!r}".encode() if scale else b""
         digest.update(f"{index!r}|{temperature!r}|".encode() + bytes(centres) + b"|" + bytes(springs) + solute + b"\n")
     return digest.hexdigest()
-
-
-def _as_float(value):
-    return np.nan if value is None else float(value)
 
 
 class Ledger:
@@ -129,14 +126,29 @@ class Ledger:
         frames : iterable of (walker, frame index, crc32 of the frame's bytes)
         """
         n_walkers = len(condition_r)
-        solute_rt2 = None if solute_r2 is None else np.asarray(solute_r2, dtype=float).reshape(n_walkers, 1, 2)
-        self.record_cycles(
-            cycle, time_t=[time], production_t=[production], condition_rt=np.reshape(condition_r, (n_walkers, 1)),
-            potential_rt=np.reshape(potential_r, (n_walkers, 1)),
-            volume_rt=np.array([[_as_float(v)] for v in volume_r]),
-            values_rtc=np.asarray(values_rc, dtype=float).reshape(n_walkers, 1, -1),
-            u_krt=np.asarray(u_kr, dtype=float)[:, :, None], solute_rt2=solute_rt2,
-            swaps=[(cycle, *s) for s in swaps], frames=[(walker, cycle, *rest) for walker, *rest in frames])
+        parts_r2 = np.zeros((n_walkers, 2)) if solute_r2 is None else np.asarray(solute_r2, dtype=float)
+        if not self.has_solute_columns:
+            self._refuse_parts(parts_r2)
+            parts_r2 = parts_r2[:, :0]
+        cycle_row, sample_rows, swap_rows = records.cycle_rows(
+            cycle, time=time, production=production, condition_r=condition_r, potential_r=potential_r,
+            volume_r=volume_r, parts_r2=parts_r2, values_rc=values_rc, u_kr=u_kr, swaps=swaps)
+        with self.connection:
+            self.connection.execute("INSERT INTO cycles VALUES (?, ?, ?, ?, ?)", cycle_row)
+            self.connection.executemany(self._insert_sample(len(sample_rows[0])), sample_rows)
+            if swap_rows:
+                self.connection.executemany("INSERT INTO swaps VALUES (?, ?, ?, ?, ?)", swap_rows)
+            if frames:
+                self.connection.executemany("INSERT INTO frames VALUES (?, ?, ?, ?)",
+                                            [(int(walker), int(cycle), *map(int, rest)) for walker, *rest in frames])
+
+    def _refuse_parts(self, parts):
+        if np.any(parts):
+            raise ValueError(f"{self.path}: a ledger of format {self.format} cannot hold solute parts")
+
+    @staticmethod
+    def _insert_sample(n_columns):
+        return f"INSERT INTO samples VALUES ({', '.join('?' * n_columns)})"
 
     def record_cycles(self, first, *, time_t, production_t, condition_rt, potential_rt, volume_rt,
                       values_rtc, u_krt, solute_rt2=None, swaps=(), frames=()):
@@ -152,8 +164,7 @@ class Ledger:
         solute_n2 = np.zeros((n_cycles * n_walkers, 2)) if solute_rt2 is None else \
             np.asarray(solute_rt2, dtype=float).transpose(1, 0, 2).reshape(n_cycles * n_walkers, 2)
         if not self.has_solute_columns:
-            if np.any(solute_n2):
-                raise ValueError(f"{self.path}: a ledger of format {self.format} cannot hold solute parts")
+            self._refuse_parts(solute_n2)
             solute_n2 = solute_n2[:, :0]
         numbers = np.concatenate([   # rows in (cycle, walker) order, columns as the reader selects them
             np.stack([np.repeat(cycle_t, n_walkers), np.tile(np.arange(n_walkers, dtype=float), n_cycles),
@@ -171,14 +182,14 @@ class Ledger:
                                                swap_rows[:, 0].astype(np.int64) - first, n_cycles))
         reduced_t = checksums.compute_row_checksums(np.column_stack([numbers[:, 1], u_nk]), checksums.REDUCED) \
             .reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
-        placeholders = ", ".join("?" * (6 + solute_n2.shape[1] + len(self.coordinate_names)))
         samples = [(int(row[0]), int(row[1]), int(row[2]), *map(_none_for_nan, row[3:]), u.tobytes())
                    for row, u in zip(numbers, u_nk)]
         with self.connection:
             self.connection.executemany("INSERT INTO cycles VALUES (?, ?, ?, ?, ?)", [
                 (int(t), float(row[1]), int(row[2]), checksums.as_stored(c), checksums.as_stored(r))
                 for t, row, c, r in zip(cycle_t, cycle_rows, checksum_t, reduced_t)])
-            self.connection.executemany(f"INSERT INTO samples VALUES ({placeholders})", samples)
+            self.connection.executemany(self._insert_sample(6 + solute_n2.shape[1] + len(self.coordinate_names)),
+                                        samples)
             self.connection.executemany("INSERT INTO swaps VALUES (?, ?, ?, ?, ?)",
                                         [tuple(int(x) for x in row) for row in swap_rows])
             self.connection.executemany("INSERT INTO frames VALUES (?, ?, ?, ?)",

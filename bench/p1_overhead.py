@@ -64,13 +64,13 @@ def cost_breakdown(scheduler, plan, folder):
     walker = host.walkers[0]
     steps = plan.protocol.run.steps_per_cycle
     rows = [("MD: integrator.step, all walkers", per_call_cpu_us(lambda: walker.integrator.step(steps), 20) * n)]
-    rows.append(("worker: each walker's own random stream around its steps (Walker.step(0))",
-                 per_call_cpu_us(lambda: walker.step(0), 300) * n))
-    rows.append(("worker: getState + numpy positions (observe)", per_call_cpu_us(walker.observe, 300) * n))
-    observations = {r: w.observe() for r, w in host.walkers.items()}
-    rows.append(("worker: coordinate values in numpy (all walkers at once)", per_call_cpu_us(
-        lambda: host._coordinate_values(observations), 300)))
-    reports = [host.propagate(0, False)[r] for r in range(n)]
+    stream = per_call_cpu_us(lambda: walker.step(0), 300) * n
+    observe = per_call_cpu_us(walker.observe, 300) * n
+    rows.append(("worker: each walker's own random stream around its steps (Walker.step(0))", stream))
+    rows.append(("worker: getState + numpy positions (observe)", observe))
+    rows.append(("worker: the rest of the host's report: coordinate values, finiteness (all walkers at once)",
+                 per_call_cpu_us(lambda: host.propagate(0, False), 300) - stream - observe))
+    reports = workers.propagate(0)
     import pickle
     rows.append(("pipes: pickle + unpickle the reports", per_call_cpu_us(
         lambda: pickle.loads(pickle.dumps(reports)), 300)))
@@ -94,7 +94,7 @@ def cost_breakdown(scheduler, plan, folder):
     counter = iter(range(10**9))
     rows.append(("driver: ledger transaction (SQLite)", per_call_cpu_us(lambda: ledger.record_cycle(
         next(counter), time=0.0, production=True, condition_r=assignment,
-        potential_r=[o.potential for o in reports], volume_r=[None] * n, values_rc=values_rc, u_kr=u_kr,
+        potential_r=reports.potential_r, volume_r=reports.volume_r, values_rc=values_rc, u_kr=u_kr,
         solute_r2=solute_r2, swaps=[(0, 1, 1, 0)]), 300)))
     ledger.close()
     checkpoint_every = plan.protocol.run.checkpoint_every

@@ -179,13 +179,12 @@ class Scheduler:
                     bar.n = cycle
                     continue
                 new_assignment, tally = self._swap(u_kr, assignment, cycle, rng)
-                written = [(r, *frames.write(r, o.positions, o.box_vectors)) for r, o in enumerate(reports)] \
-                    if framing else []
+                written = [(r, *frames.write(r, positions, box)) for r, (positions, box)
+                           in enumerate(zip(reports.positions_r, reports.box_vectors_r))] if framing else []
                 ledger.record_cycle(
                     cycle, time=(cycle + 1) * cycle_ps, production=cycle >= run.equilibration_cycles,
-                    condition_r=assignment, potential_r=[o.potential for o in reports],
-                    volume_r=[o.volume for o in reports], values_rc=values_rc, u_kr=u_kr,
-                    solute_r2=solute_r2, swaps=tally, frames=written)
+                    condition_r=assignment, potential_r=reports.potential_r, volume_r=reports.volume_r,
+                    values_rc=values_rc, u_kr=u_kr, solute_r2=solute_r2, swaps=tally, frames=written)
                 if status is not None:
                     status.add(cycle, assignment, values_rc[:, self.umbrella_columns], tally)
                     if status.due():
@@ -226,17 +225,14 @@ class Scheduler:
 
     def _evaluate(self, reports, assignment, cycle):
         plan = self.plan
-        bad = [o.walker for o in reports if not o.finite]
-        if bad:
-            r = bad[0]
+        if not reports.finite_r.all():
+            r = int(np.flatnonzero(~reports.finite_r)[0])
             raise WalkerBlowUp(r, f"walker {r} in condition {assignment[r]} blew up at cycle {cycle} "
-                                  f"(potential energy {reports[r].potential} kJ/mol).")
-        values_rc = np.array([o.values for o in reports]).reshape(len(reports), len(self.coordinate_list))
-        potential_r = np.array([o.potential for o in reports])
-        solute_r2 = np.array([o.solute or (0.0, 0.0) for o in reports]).reshape(len(reports), 2)
+                                  f"(potential energy {reports.potential_r[r]} kJ/mol).")
+        values_rc, solute_r2 = reports.values_rc, reports.solute_r2
         u_kr = compute_reduced_potentials(
-            plan.conditions, potential_r, values_rc[:, self.umbrella_columns], self.periodic_a,
-            solute_r2=solute_r2, volume_r=[o.volume for o in reports], pressure=plan.protocol.pressure)
+            plan.conditions, reports.potential_r, values_rc[:, self.umbrella_columns], self.periodic_a,
+            solute_r2=solute_r2, volume_r=reports.volume_r, pressure=plan.protocol.pressure)
         return values_rc, solute_r2, u_kr
 
 

@@ -43,18 +43,45 @@ class WalkerSetup:
 
 
 @dataclass(frozen=True)
-class Report:
-    """One walker after one cycle: potential (kJ/mol at λ = 1, umbrellas excluded), values (nm, rad),
-    solute parts (E_cross, E_inner) in kJ/mol or None."""
+class Reports:
+    """Walkers after one cycle, one row each (row i is walker ``walker_r[i]``).
 
-    walker: int
-    potential: float
-    values: np.ndarray
-    volume: float | None
-    finite: bool
-    positions: np.ndarray | None = None
-    box_vectors: np.ndarray | None = None
-    solute: tuple | None = None
+    potential_r : ndarray, shape (n,), kJ/mol at λ = 1, umbrellas excluded
+    values_rc : ndarray, shape (n, n_coordinates), nm or rad (NaN where not finite)
+    volume_r : ndarray, shape (n,), nm³, NaN without a box
+    finite_r : ndarray of bool, shape (n,): energy, positions and solute parts all finite
+    solute_r2 : ndarray, shape (n, 2), kJ/mol: (E_cross, E_inner), zeros without solute scaling
+    positions_r, box_vectors_r : tuples of ndarray (nm) or None, when frames are due
+    """
+
+    walker_r: tuple
+    potential_r: np.ndarray
+    values_rc: np.ndarray
+    volume_r: np.ndarray
+    finite_r: np.ndarray
+    solute_r2: np.ndarray
+    positions_r: tuple | None = None
+    box_vectors_r: tuple | None = None
+
+
+def join_reports(parts, order):
+    """One Reports of the rows of ``parts`` (each host's), in the walker order ``order``."""
+    if len(parts) == 1 and parts[0].walker_r == tuple(order):
+        return parts[0]
+    walker_r = sum((p.walker_r for p in parts), ())
+    rows = [walker_r.index(r) for r in order]
+    framed = parts[0].positions_r is not None
+
+    def pick(name):
+        return np.concatenate([getattr(p, name) for p in parts])[rows]
+
+    def pick_each(name):
+        joined = sum((getattr(p, name) for p in parts), ())
+        return tuple(joined[i] for i in rows)
+
+    return Reports(tuple(order), pick("potential_r"), pick("values_rc"), pick("volume_r"), pick("finite_r"),
+                   pick("solute_r2"), pick_each("positions_r") if framed else None,
+                   pick_each("box_vectors_r") if framed else None)
 
 
 class WalkerHost:
@@ -86,32 +113,26 @@ class WalkerHost:
         return {}
 
     def propagate(self, n_steps, with_positions):
-        observations = {}
+        """Step every walker, then report them all at once: {walker indices: Reports}."""
+        observations = []
         for r, walker in self.walkers.items():
             walker.step(n_steps, self.waiting.pop(r, ()))
-            observations[r] = walker.observe()
-        finite = {r: bool(np.isfinite(o.potential) and np.all(np.isfinite(o.positions))
-                          and (o.solute is None or np.all(np.isfinite(o.solute))))
-                  for r, o in observations.items()}
-        values = self._coordinate_values({r: o for r, o in observations.items() if finite[r]})
-        reports = {}
-        for r, o in observations.items():
-            keep = with_positions and finite[r]
-            reports[r] = Report(r, o.potential, values.get(r, np.full(len(self.setup.coordinates), np.nan)),
-                                o.volume, finite[r], o.positions if keep else None,
-                                o.box_vectors if keep else None, o.solute)
-        return reports
-
-    def _coordinate_values(self, observations):
-        """{walker: values}, computed for all walkers at once (one set of numpy calls)."""
-        if not observations or not self.setup.coordinates:
-            return {r: np.empty(0) for r in observations}
-        walkers = list(observations)
-        xyz = np.stack([observations[r].positions for r in walkers])
-        boxes = None if observations[walkers[0]].box_vectors is None else \
-            np.stack([observations[r].box_vectors for r in walkers])
-        values = compute_coordinate_values_many(self.setup.coordinates, xyz, self.setup.masses, boxes)
-        return dict(zip(walkers, values))
+            observations.append(walker.observe())
+        n = len(observations)
+        xyz = np.stack([o.positions for o in observations])
+        boxes = None if observations[0].box_vectors is None else np.stack([o.box_vectors for o in observations])
+        potential_r = np.array([o.potential for o in observations])
+        solute_r2 = np.array([o.solute or (0.0, 0.0) for o in observations]).reshape(n, 2)
+        finite_r = np.isfinite(potential_r) & np.isfinite(xyz).all(axis=(1, 2)) & np.isfinite(solute_r2).all(axis=1)
+        values_rc = np.full((n, len(self.setup.coordinates)), np.nan)
+        if self.setup.coordinates and finite_r.any():
+            values_rc[finite_r] = compute_coordinate_values_many(
+                self.setup.coordinates, xyz[finite_r], self.setup.masses, None if boxes is None else boxes[finite_r])
+        walker_r = tuple(self.walkers)
+        return {walker_r: Reports(walker_r, potential_r, values_rc,
+                                  np.array([o.volume for o in observations], dtype=float), finite_r, solute_r2,
+                                  tuple(xyz) if with_positions else None,
+                                  tuple(o.box_vectors for o in observations) if with_positions else None)}
 
     def assign(self, conditions):
         """conditions: dict walker -> condition index.
@@ -156,8 +177,8 @@ def spread(indices, n_hosts):
 class _Workers:
     """The scheduler's view of some walkers; subclasses say how a command reaches the hosts.
 
-    Commands return dicts keyed by walker index; the methods below turn them into lists
-    in the order of ``indices``.
+    Commands return dicts keyed by walker index (propagate: by the tuple of a host's walker
+    indices, one Reports each); the methods below put them in the order of ``indices``.
     """
 
     indices = ()
@@ -172,9 +193,8 @@ class _Workers:
         self.call("draw_velocities", dict(seeds))
 
     def propagate(self, n_steps, with_positions=False):
-        """Advance every walker ``n_steps``; return their Reports in walker order."""
-        reports = self.call("propagate", n_steps, with_positions)
-        return [reports[r] for r in self.indices]
+        """Advance every walker ``n_steps``; return one Reports of them all, in walker order."""
+        return join_reports(list(self.call("propagate", n_steps, with_positions).values()), self.indices)
 
     def assign(self, condition_r):
         self.call("assign", dict(enumerate(condition_r)))

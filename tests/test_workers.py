@@ -171,9 +171,8 @@ def test_an_assigned_condition_is_taken_as_if_applied_at_once(tmp_path):
     for r, k in swapped.items():
         at_once.walkers[r].apply(setup.conditions[k])
     for _ in range(2):
-        a, b = waiting.propagate(50, True), at_once.propagate(50, True)
-        assert all(np.array_equal(a[r].positions, b[r].positions) and a[r].potential == b[r].potential
-                   for r in range(4))
+        (a,), (b,) = waiting.propagate(50, True).values(), at_once.propagate(50, True).values()
+        assert np.array_equal(a.positions_r, b.positions_r) and np.array_equal(a.potential_r, b.potential_r)
     waiting.assign({0: 0, 1: 1})
     at_once.walkers[0].apply(setup.conditions[0])
     at_once.walkers[1].apply(setup.conditions[1])

@@ -12,6 +12,7 @@ temperatures this is min{1, exp[(β_a - β_b)(U_r - U_s)]}.
 """
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -43,12 +44,17 @@ def neighbour_pairs(ladder_shape, cycle):
     axes = [a for a, size in enumerate(ladder_shape) if size > 1]
     if not axes:
         return []
-    axis = axes[cycle % len(axes)]
-    parity = (cycle // len(axes)) % 2
+    return list(_pairs_along(tuple(ladder_shape), axes[cycle % len(axes)], (cycle // len(axes)) % 2))
+
+
+@lru_cache(maxsize=64)
+def _pairs_along(ladder_shape, axis, parity):
+    """Neighbour pairs along ``axis`` whose lower member sits at an even (0) or odd (1) step;
+    made once for each (a run asks for the same few every cycle)."""
     index = np.arange(int(np.prod(ladder_shape))).reshape(ladder_shape)
     lower = np.moveaxis(index, axis, 0)
-    return [(int(a), int(b)) for step in range(parity, ladder_shape[axis] - 1, 2)
-            for a, b in zip(lower[step].ravel(), lower[step + 1].ravel())]
+    return tuple((int(a), int(b)) for step in range(parity, ladder_shape[axis] - 1, 2)
+                 for a, b in zip(lower[step].ravel(), lower[step + 1].ravel()))
 
 
 def swap_adjacent(u_kr, assignment, ladder_shape, cycle, rng, *, attempts=1):

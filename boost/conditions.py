@@ -27,7 +27,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .solute_parts import compute_solute_shifts
+from .solute_parts import shifts_from_factors, solute_factors
 from .units import beta
 
 #: kJ/mol per (bar nm³): 1e5 Pa × 1e-27 m³ × Avogadro's number (exact SI constants).
@@ -89,16 +89,7 @@ def compute_bias_energies(conditions, values_ra, periodic_a):
     -------
     ndarray, shape (n_conditions, n_walkers), in kJ/mol
     """
-    values_ra = np.asarray(values_ra, dtype=float)
-    energy_kr = np.zeros((len(conditions), values_ra.shape[0]))
-    for a, periodic in enumerate(periodic_a):
-        centre_k = np.array([c.centres[a] for c in conditions])[:, None]
-        spring_k = np.array([c.springs[a] for c in conditions])[:, None]
-        difference = values_ra[None, :, a] - centre_k
-        if periodic:
-            difference = wrap_difference(difference)
-        energy_kr += 0.5 * spring_k * difference**2
-    return energy_kr
+    return ConditionArrays(conditions, periodic_a).bias_energies(values_ra)
 
 
 def compute_reduced_potentials(conditions, potential_r, values_ra, periodic_a, *,
@@ -112,14 +103,47 @@ def compute_reduced_potentials(conditions, potential_r, values_ra, periodic_a, *
     solute_r2 : ndarray, shape (n_walkers, 2), in kJ/mol: (E_cross, E_inner), or None (zeros)
     volume_r : ndarray, shape (n_walkers,), in nm³, used only when ``pressure`` (bar) is set
     """
-    potential_r = np.asarray(potential_r, dtype=float)
-    energy_kr = potential_r[None, :] + compute_bias_energies(conditions, values_ra, periodic_a)
-    if solute_r2 is not None:
-        energy_kr = energy_kr + compute_solute_shifts(solute_r2, [c.solute_scale for c in conditions])
-    if pressure is not None:
-        energy_kr = energy_kr + pressure * BAR_NM3 * np.asarray(volume_r, dtype=float)[None, :]
-    beta_k = np.array([beta(c.temperature) for c in conditions])
-    return beta_k[:, None] * energy_kr
+    return ConditionArrays(conditions, periodic_a).reduced_potentials(
+        potential_r, values_ra, solute_r2=solute_r2, volume_r=volume_r, pressure=pressure)
+
+
+class ConditionArrays:
+    """The numbers of some conditions as arrays, made once: what the reduced potentials of
+    every cycle need (the scheduler keeps one for the run; a cycle then costs a few numpy calls).
+
+    Parameters
+    ----------
+    conditions : sequence of Condition, length n_conditions
+    periodic_a : sequence of bool, per umbrella axis
+    """
+
+    def __init__(self, conditions, periodic_a):
+        self.periodic_a = tuple(periodic_a)
+        self.centre_ak = [np.array([c.centres[a] for c in conditions])[:, None] for a in range(len(self.periodic_a))]
+        self.spring_ak = [np.array([c.springs[a] for c in conditions])[:, None] for a in range(len(self.periodic_a))]
+        self.solute_factors_k2 = solute_factors([c.solute_scale for c in conditions])
+        self.beta_k = np.array([beta(c.temperature) for c in conditions])
+
+    def bias_energies(self, values_ra):
+        """Umbrella energy (kJ/mol) of each walker in each condition, shape (n_conditions, n_walkers)."""
+        values_ra = np.asarray(values_ra, dtype=float)
+        energy_kr = np.zeros((len(self.beta_k), values_ra.shape[0]))
+        for a, periodic in enumerate(self.periodic_a):
+            difference = values_ra[None, :, a] - self.centre_ak[a]
+            if periodic:
+                difference = wrap_difference(difference)
+            energy_kr += 0.5 * self.spring_ak[a] * difference**2
+        return energy_kr
+
+    def reduced_potentials(self, potential_r, values_ra, *, solute_r2=None, volume_r=None, pressure=None):
+        """u_kr, as :func:`compute_reduced_potentials`."""
+        potential_r = np.asarray(potential_r, dtype=float)
+        energy_kr = potential_r[None, :] + self.bias_energies(values_ra)
+        if solute_r2 is not None:
+            energy_kr = energy_kr + shifts_from_factors(self.solute_factors_k2, solute_r2)
+        if pressure is not None:
+            energy_kr = energy_kr + pressure * BAR_NM3 * np.asarray(volume_r, dtype=float)[None, :]
+        return self.beta_k[:, None] * energy_kr
 
 
 def compute_unbiased_reduced_potential(temperature, potential_n, *, volume_n=None, pressure=None):

@@ -14,7 +14,7 @@ from dataclasses import replace
 import numpy as np
 from tqdm import tqdm
 
-from .conditions import compute_reduced_potentials
+from .conditions import ConditionArrays
 from .engine import PlatformChoice, derive_seeds
 from .exceptions import BoostError, RunFolderError, SimulationError
 from .exchange import swap_for_cycle
@@ -41,6 +41,7 @@ class Scheduler:
         self.coordinate_list = list(plan.coordinates.values())
         self.umbrella_columns = [list(plan.coordinates).index(name) for name in plan.umbrella_names]
         self.periodic_a = [plan.coordinates[name].periodic for name in plan.umbrella_names]
+        self.condition_arrays = ConditionArrays(plan.conditions, self.periodic_a)
         self.masses = plan.built.masses
         protocol = plan.protocol
         self.ladder_shape = plan.ladder_shape
@@ -230,9 +231,9 @@ class Scheduler:
             raise WalkerBlowUp(r, f"walker {r} in condition {assignment[r]} blew up at cycle {cycle} "
                                   f"(potential energy {reports.potential_r[r]} kJ/mol).")
         values_rc, solute_r2 = reports.values_rc, reports.solute_r2
-        u_kr = compute_reduced_potentials(
-            plan.conditions, reports.potential_r, values_rc[:, self.umbrella_columns], self.periodic_a,
-            solute_r2=solute_r2, volume_r=reports.volume_r, pressure=plan.protocol.pressure)
+        u_kr = self.condition_arrays.reduced_potentials(
+            reports.potential_r, values_rc[:, self.umbrella_columns], solute_r2=solute_r2,
+            volume_r=reports.volume_r, pressure=plan.protocol.pressure)
         return values_rc, solute_r2, u_kr
 
 

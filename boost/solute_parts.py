@@ -66,10 +66,18 @@ def compute_solute_shifts(solute_r2, scale_k):
     solute_r2 : ndarray, shape (n_walkers, 2), in kJ/mol
     scale_k : ndarray, shape (n_conditions,), each in (0, 1]
     """
-    solute_r2 = np.asarray(solute_r2, dtype=float).reshape(-1, 2)
+    return shifts_from_factors(solute_factors(scale_k), solute_r2)
+
+
+def shifts_from_factors(factors_k2, solute_r2):
+    """compute_solute_shifts with the factors of ``solute_factors`` made beforehand."""
+    return factors_k2 @ np.asarray(solute_r2, dtype=float).reshape(-1, 2).T
+
+
+def solute_factors(scale_k):
+    """(√λ_k − 1, λ_k − 1) per condition, shape (n_conditions, 2), after checking each λ_k."""
     scale_k = check_solute_scales(scale_k)
-    factors_k2 = np.stack([np.sqrt(scale_k) - 1.0, scale_k - 1.0], axis=1)
-    return factors_k2 @ solute_r2.T
+    return np.stack([np.sqrt(scale_k) - 1.0, scale_k - 1.0], axis=1)
 
 
 def compute_solute_energies(parts_r3, scale_k):

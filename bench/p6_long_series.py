@@ -16,8 +16,8 @@ MBAR, PMF, basins, report) on SYNTHETIC ledgers (invented data, for this benchma
   around each centre with the umbrella's width.
 
 The ledgers have the tables and metadata of boost.store.Ledger.create. The first
---record-cycles cycles go through Ledger.record_cycle (one transaction per cycle, as a
-run writes them) to measure its rate; the rest is inserted in bulk rows of the same form,
+--record-cycles cycles go through Ledger.record_cycle (as a run records them: written in
+batches, Ledger's WRITE_EVERY_SECONDS) to measure its rate; the rest is inserted in bulk rows of the same form,
 since 10^7 transactions alone would take far longer than the analysis. Each analysis
 stage's time is printed (wrapped functions), so it shows where the time goes.
 

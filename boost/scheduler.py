@@ -118,9 +118,9 @@ class Scheduler:
             self._loop(workers, ledger, frames, rng, start, assignment)
         finally:
             workers.close()
-            ledger.close()
             if frames:
                 frames.close()
+            ledger.close()       # last: it writes the cycles still waiting, which may fail
 
     def _frames_on_disk(self, ledger):
         counts, notes = self.folder.frames_to_keep(ledger, self.plan.n_walkers, frame_bytes=frame_bytes(self.plan),
@@ -193,6 +193,7 @@ class Scheduler:
                 assignment = new_assignment
                 workers.assign(assignment)
                 if (cycle + 1) % run.checkpoint_every == 0 or cycle + 1 == run.n_cycles:
+                    ledger.write_waiting()       # a checkpoint never runs ahead of the ledger
                     self._checkpoint(workers, cycle, assignment, rng)
                 bar.update()
                 cycle += 1

@@ -6,7 +6,7 @@ Layout::
       boost-run.json    identity: a random run id (also in the ledger); marks the folder as boost's
       protocol.yaml     the protocol text, byte for byte
       provenance.json   protocol hash, seeds, platform, package versions, host, times
-      ledger.sqlite     one transaction per cycle, every cycle with checksums (ledger.py)
+      ledger.sqlite     every cycle with checksums, cycles written in batches (ledger.py)
       topology.pdb      the starting structure, for reading frames with mdtraj
       frames/walker-NNN.dcd   one DCD file per walker, each frame's crc32 in the ledger (frames.py)
       checkpoints/      state.bin and state-previous.bin, with digests (checkpoints.py)

@@ -1,4 +1,4 @@
-"""The ledger: an SQLite file, one transaction per cycle, every cycle with checksums.
+"""The ledger: an SQLite file, every cycle with checksums, each complete in one transaction.
 
 Tables (units in column comments): ``meta`` (key, JSON value; ``header_sha256`` covers
 every other meta row and the conditions table), ``conditions`` (index, temperature K,
@@ -25,6 +25,7 @@ import json
 import sqlite3
 from dataclasses import dataclass
 from pathlib import Path
+from time import monotonic
 
 import numpy as np
 
@@ -40,6 +41,11 @@ FORMAT = 3
 #: The first format with solute columns.
 SOLUTE_FORMAT = 3
 _HEADER_KEY = "header_sha256"
+#: Seconds a recorded cycle may wait in memory: Ledger.record_cycle keeps cycles and writes
+#: them together, in one transaction, once the oldest waiting one is this old (and whenever
+#: the ledger is asked anything, is closed, or Ledger.write_waiting is called: the scheduler
+#: calls it before every checkpoint).
+WRITE_EVERY_SECONDS = 1.0
 _TABLES = ("meta", "conditions", "cycles", "samples", "swaps", "frames")
 
 
@@ -66,11 +72,19 @@ def _header_digest(meta_rows, condition_rows):
 
 
 class Ledger:
-    """Writer of the SQLite ledger; one transaction per cycle."""
+    """Writer of the SQLite ledger: every cycle complete in one transaction, several cycles at
+    once when they come quickly (see WRITE_EVERY_SECONDS).
 
-    def __init__(self, path, *, coordinate_names=()):
+    A kill loses only cycles recorded within the last ``write_every`` seconds and after the
+    newest checkpoint: cycles a resume computes again anyway (it starts from that checkpoint).
+    """
+
+    def __init__(self, path, *, coordinate_names=(), write_every=None):
         self.path = Path(path)
         self.coordinate_names = tuple(coordinate_names)
+        self.write_every = WRITE_EVERY_SECONDS if write_every is None else write_every
+        self._waiting = []                   # the numbers of each recorded cycle not yet written
+        self._oldest = None                  # monotonic() when the oldest waiting cycle was recorded
         self.connection = sqlite3.connect(self.path)
         self.connection.execute("PRAGMA journal_mode=WAL")
         self.connection.execute("PRAGMA synchronous=NORMAL")
@@ -117,7 +131,8 @@ class Ledger:
 
     def record_cycle(self, cycle, *, time, production, condition_r, potential_r, volume_r,
                      values_rc, u_kr, solute_r2=None, swaps=(), frames=()):
-        """Store one complete cycle in one transaction.
+        """Record one complete cycle; it reaches the file with the cycles waiting beside it, in
+        one transaction (see the class docstring).
 
         values_rc : ndarray, shape (n_walkers, n_coordinates), nm or rad
         u_kr : ndarray, shape (n_conditions, n_walkers), kT
@@ -125,22 +140,35 @@ class Ledger:
         swaps : iterable of (condition_i, condition_j, attempts, accepted)
         frames : iterable of (walker, frame index, crc32 of the frame's bytes)
         """
-        n_walkers = len(condition_r)
-        parts_r2 = np.zeros((n_walkers, 2)) if solute_r2 is None else np.asarray(solute_r2, dtype=float)
-        if not self.has_solute_columns:
-            self._refuse_parts(parts_r2)
-            parts_r2 = parts_r2[:, :0]
-        cycle_row, sample_rows, swap_rows = records.cycle_rows(
-            cycle, time=time, production=production, condition_r=condition_r, potential_r=potential_r,
-            volume_r=volume_r, parts_r2=parts_r2, values_rc=values_rc, u_kr=u_kr, swaps=swaps)
-        with self.connection:
-            self.connection.execute("INSERT INTO cycles VALUES (?, ?, ?, ?, ?)", cycle_row)
-            self.connection.executemany(self._insert_sample(len(sample_rows[0])), sample_rows)
-            if swap_rows:
-                self.connection.executemany("INSERT INTO swaps VALUES (?, ?, ?, ?, ?)", swap_rows)
-            if frames:
-                self.connection.executemany("INSERT INTO frames VALUES (?, ?, ?, ?)",
-                                            [(int(walker), int(cycle), *map(int, rest)) for walker, *rest in frames])
+        if solute_r2 is not None and not self.has_solute_columns:
+            self._refuse_parts(solute_r2)
+        if self._waiting and cycle != self._waiting[-1][0] + 1:
+            self.write_waiting()          # a batch holds consecutive cycles
+        self._waiting.append((int(cycle), float(time), bool(production), np.array(condition_r),
+                              np.array(potential_r, dtype=float), np.array(volume_r, dtype=float),
+                              np.array(values_rc, dtype=float).reshape(len(condition_r), -1),
+                              np.array(u_kr, dtype=float), None if solute_r2 is None else np.array(solute_r2, dtype=float),
+                              list(swaps), list(frames)))
+        now = monotonic()
+        self._oldest = now if self._oldest is None else self._oldest
+        if now - self._oldest >= self.write_every:
+            self.write_waiting()
+
+    def write_waiting(self):
+        """Write every recorded cycle not yet in the file, in one transaction."""
+        if not self._waiting:
+            return
+        cycle_t, time_t, production_t, condition, potential, volume, values, u, solute, swaps, frames = \
+            zip(*self._waiting)
+        parts = None if all(p is None for p in solute) else \
+            np.stack([np.zeros((len(condition[0]), 2)) if p is None else p for p in solute], axis=1)
+        self._write(cycle_t[0], time_t=time_t, production_t=production_t, condition_rt=np.stack(condition, axis=1),
+                    potential_rt=np.stack(potential, axis=1), volume_rt=np.stack(volume, axis=1),
+                    values_rtc=np.stack(values, axis=1), u_krt=np.stack(u, axis=2), solute_rt2=parts,
+                    swaps=[(t, *s) for t, rows in zip(cycle_t, swaps) for s in rows],
+                    frames=[(walker, t, *rest) for t, rows in zip(cycle_t, frames) for walker, *rest in rows])
+        self._waiting.clear()
+        self._oldest = None
 
     def _refuse_parts(self, parts):
         if np.any(parts):
@@ -158,46 +186,32 @@ class Ledger:
         (cycle, condition_i, condition_j, attempts, accepted) rows; frames : (walker, cycle,
         frame index, crc32) rows.
         """
-        condition_rt = np.asarray(condition_rt)
-        n_walkers, n_cycles = condition_rt.shape
-        cycle_t = np.arange(first, first + n_cycles, dtype=float)
+        self.write_waiting()
+        self._write(first, time_t=time_t, production_t=production_t, condition_rt=condition_rt,
+                    potential_rt=potential_rt, volume_rt=volume_rt, values_rtc=values_rtc, u_krt=u_krt,
+                    solute_rt2=solute_rt2, swaps=swaps, frames=frames)
+
+    def _write(self, first, *, solute_rt2, frames, **numbers):
+        n_walkers, n_cycles = np.shape(numbers["condition_rt"])
         solute_n2 = np.zeros((n_cycles * n_walkers, 2)) if solute_rt2 is None else \
             np.asarray(solute_rt2, dtype=float).transpose(1, 0, 2).reshape(n_cycles * n_walkers, 2)
         if not self.has_solute_columns:
             self._refuse_parts(solute_n2)
             solute_n2 = solute_n2[:, :0]
-        numbers = np.concatenate([   # rows in (cycle, walker) order, columns as the reader selects them
-            np.stack([np.repeat(cycle_t, n_walkers), np.tile(np.arange(n_walkers, dtype=float), n_cycles),
-                      condition_rt.T.ravel().astype(float), np.asarray(potential_rt, dtype=float).T.ravel(),
-                      np.asarray(volume_rt, dtype=float).T.ravel()], axis=1), solute_n2,
-            np.asarray(values_rtc, dtype=float).transpose(1, 0, 2).reshape(n_cycles * n_walkers, -1)], axis=1)
-        u_nk = np.ascontiguousarray(np.asarray(u_krt, dtype="<f8").transpose(2, 1, 0).reshape(-1, len(u_krt)))
-        swap_rows = np.array(list(swaps), dtype=float).reshape(-1, 5)
-        cycle_rows = np.stack([cycle_t, np.asarray(time_t, dtype=float),
-                               np.asarray(production_t, dtype=bool).astype(float)], axis=1)
-        checksum_t = (checksums.compute_row_checksums(cycle_rows, checksums.CYCLES)
-                      + checksums.compute_row_checksums(numbers, checksums.SAMPLES)
-                      .reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
-                      + checksums.sum_by_cycle(checksums.compute_row_checksums(swap_rows, checksums.SWAPS),
-                                               swap_rows[:, 0].astype(np.int64) - first, n_cycles))
-        reduced_t = checksums.compute_row_checksums(np.column_stack([numbers[:, 1], u_nk]), checksums.REDUCED) \
-            .reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
-        samples = [(int(row[0]), int(row[1]), int(row[2]), *map(_none_for_nan, row[3:]), u.tobytes())
-                   for row, u in zip(numbers, u_nk)]
+        cycles, samples, swaps = records.rows_of_cycles(first, solute_n2=solute_n2, **numbers)
         with self.connection:
-            self.connection.executemany("INSERT INTO cycles VALUES (?, ?, ?, ?, ?)", [
-                (int(t), float(row[1]), int(row[2]), checksums.as_stored(c), checksums.as_stored(r))
-                for t, row, c, r in zip(cycle_t, cycle_rows, checksum_t, reduced_t)])
-            self.connection.executemany(self._insert_sample(6 + solute_n2.shape[1] + len(self.coordinate_names)),
-                                        samples)
-            self.connection.executemany("INSERT INTO swaps VALUES (?, ?, ?, ?, ?)",
-                                        [tuple(int(x) for x in row) for row in swap_rows])
-            self.connection.executemany("INSERT INTO frames VALUES (?, ?, ?, ?)",
-                                        [tuple(int(x) for x in row) for row in frames])
+            self.connection.executemany("INSERT INTO cycles VALUES (?, ?, ?, ?, ?)", cycles)
+            self.connection.executemany(self._insert_sample(len(samples[0])), samples)
+            if swaps:
+                self.connection.executemany("INSERT INTO swaps VALUES (?, ?, ?, ?, ?)", swaps)
+            if frames:
+                self.connection.executemany("INSERT INTO frames VALUES (?, ?, ?, ?)",
+                                            [tuple(int(x) for x in row) for row in frames])
 
     def amend_header(self, changes):
         """Replace meta entries (``{key: value}``) and the header digest, in one transaction:
         how an extended run records the protocol it now follows."""
+        self.write_waiting()
         with self.connection:
             self.connection.executemany("INSERT OR REPLACE INTO meta VALUES (?, ?)",
                                         [(key, json.dumps(value)) for key, value in changes.items()])
@@ -209,12 +223,14 @@ class Ledger:
 
     def truncate_after(self, cycle):
         """Forget every record after ``cycle`` (-1: all), in one transaction."""
+        self.write_waiting()
         with self.connection:
             for table in ("cycles", "samples", "swaps", "frames"):
                 self.connection.execute(f"DELETE FROM {table} WHERE cycle > ?", (cycle,))
 
     def frame_records(self, n_walkers):
         """Per walker, the crc32 of each recorded frame in file order."""
+        self.write_waiting()
         records = [[] for _ in range(n_walkers)]
         for walker, crc in self.connection.execute("SELECT walker, checksum FROM frames ORDER BY walker, frame"):
             records[walker].append(crc)
@@ -222,20 +238,22 @@ class Ledger:
 
     def forget_frames_from(self, walker, count):
         """Drop the frame records of ``walker`` from index ``count`` on (frames lost on disk)."""
+        self.write_waiting()
         with self.connection:
             self.connection.execute("DELETE FROM frames WHERE walker = ? AND frame >= ?", (walker, count))
 
     def record_retry(self, cycle, walker, seed):
+        self.write_waiting()
         with self.connection:
             self.connection.execute("CREATE TABLE IF NOT EXISTS retries (cycle INTEGER, walker INTEGER, seed INTEGER)")
             self.connection.execute("INSERT INTO retries VALUES (?, ?, ?)", (cycle, walker, seed))
 
     def close(self):
-        self.connection.close()
-
-
-def _none_for_nan(value):
-    return None if np.isnan(value) else float(value)
+        """Write what waits, then close the file."""
+        try:
+            self.write_waiting()
+        finally:
+            self.connection.close()
 
 
 @dataclass(frozen=True)

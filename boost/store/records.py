@@ -1,12 +1,9 @@
-"""One cycle's ledger rows and their checksums, built with a few numpy calls.
+"""The rows of consecutive cycles as the ledger's tables take them, with their checksums.
 
-The scheduler writes one cycle per transaction (Ledger.record_cycle). On a small system a
-cycle of MD takes a few milliseconds, so the work around the rows weighs: here the
-checksums of the cycle's records (boost.store.checksums: its cycles row, samples and swaps
-for ``checksum``, its reduced potentials for ``reduced_checksum``) come from one pass over
-one array of all their numbers, with the salts of each shape of block made once. A sum
-mod 2**64 does not depend on the order of its terms, so these are the sums row-by-row
-checksums give (tests/test_records.py compares with Ledger.record_cycles).
+The ledger writes the cycles the scheduler records in batches (boost.store.ledger), so
+the numbers of a batch are turned into rows and checksums (boost.store.checksums) here
+with a fixed number of numpy calls, whatever the number of cycles, and one Python tuple
+per row built from plain floats (``tolist``), never from numpy scalars one by one.
 """
 
 from functools import lru_cache
@@ -16,47 +13,53 @@ import numpy as np
 from . import checksums
 
 
-@lru_cache(maxsize=256)
-def _salts(blocks):
-    """Salts of every number of ``blocks`` ((table, n_rows, n_columns), ...), flattened in order."""
-    return np.concatenate([np.tile(checksums.column_salts(n_columns, table), n_rows)
-                           for table, n_rows, n_columns in blocks])
+@lru_cache(maxsize=64)
+def _salts(n_columns, table):
+    return checksums.column_salts(n_columns, table)
 
 
-def cycle_rows(cycle, *, time, production, condition_r, potential_r, volume_r, parts_r2, values_rc, u_kr, swaps):
-    """The rows of one cycle as the ledger's tables take them.
+def _row_checksums(rows, table):
+    """checksums.compute_row_checksums, with the salts of each width made once."""
+    return checksums.mix_words(rows, _salts(rows.shape[1], table)).sum(axis=1, dtype=np.uint64)
 
-    parts_r2 : ndarray, shape (n_walkers, 2) in kJ/mol, or (n_walkers, 0) for a ledger
-        without solute columns; volume_r : nm³ or None; swaps : (condition_i, condition_j,
-        attempts, accepted) rows; other arguments as Ledger.record_cycle.
+
+def rows_of_cycles(first, *, time_t, production_t, condition_rt, potential_rt, volume_rt, values_rtc, u_krt,
+                   solute_n2, swaps):
+    """Rows of cycles ``first`` .. ``first + n_cycles - 1`` for the cycles, samples and swaps tables.
+
+    Arrays as in boost.store.LedgerData (volume NaN: none); solute_n2 : ndarray, shape
+    (n_cycles * n_walkers, 2) in (cycle, walker) order, kJ/mol, or (…, 0) for a ledger
+    without solute columns; swaps : (cycle, condition_i, condition_j, attempts, accepted) rows.
 
     Returns
     -------
-    cycle_row : (cycle, time, production, checksum, reduced_checksum)
-    sample_rows : list of (cycle, walker, condition, potential, volume, [parts,] values..., reduced bytes)
+    cycle_rows : list of (cycle, time, production, checksum, reduced_checksum), checksums as SQLite stores them
+    sample_rows : list of (cycle, walker, condition, potential, volume, [parts,] values..., reduced bytes);
+        None for NaN
     swap_rows : list of (cycle, condition_i, condition_j, attempts, accepted)
     """
-    cycle, (n_walkers, n_parts) = int(cycle), parts_r2.shape
-    u_rk = np.ascontiguousarray(np.transpose(u_kr), dtype="<f8")
-    values_rc = np.asarray(values_rc, dtype=float).reshape(n_walkers, -1)
-    walker_r = np.arange(n_walkers)
-    numbers = np.empty((n_walkers, 5 + n_parts + values_rc.shape[1]))    # the columns the reader selects
-    numbers[:, 0], numbers[:, 1], numbers[:, 2], numbers[:, 3] = cycle, walker_r, condition_r, potential_r
-    numbers[:, 4] = np.array(volume_r, dtype=float)       # None: NaN
-    numbers[:, 5:5 + n_parts] = parts_r2
-    numbers[:, 5 + n_parts:] = values_rc
-    reduced = np.empty((n_walkers, 1 + u_rk.shape[1]))
-    reduced[:, 0], reduced[:, 1:] = walker_r, u_rk
-    swap_rows = [(cycle, *(int(x) for x in row)) for row in swaps]
-    words = np.concatenate([(cycle, time, float(bool(production))), numbers.ravel(),
-                            np.array(swap_rows, dtype=float).ravel(), reduced.ravel()])
-    salts = _salts(((checksums.CYCLES, 1, 3), (checksums.SAMPLES, *numbers.shape), (checksums.SWAPS, len(swap_rows), 5),
-                    (checksums.REDUCED, *reduced.shape)))
-    mixed = checksums.mix_words(words, salts)
-    split = words.size - reduced.size
-    sums = np.array([mixed[:split].sum(dtype=np.uint64), mixed[split:].sum(dtype=np.uint64)])
-    checksum, reduced_checksum = sums.view(np.int64).tolist()     # as SQLite stores them (checksums.as_stored)
-    width, blob = 8 * u_rk.shape[1], u_rk.tobytes()
-    sample_rows = [(cycle, r, int(row[2]), *[x if x == x else None for x in row[3:]], blob[r * width:(r + 1) * width])
-                   for r, row in enumerate(numbers.tolist())]
-    return (cycle, float(time), int(bool(production)), checksum, reduced_checksum), sample_rows, swap_rows
+    condition_rt = np.asarray(condition_rt)
+    n_walkers, n_cycles = condition_rt.shape
+    cycle_t = np.arange(first, first + n_cycles, dtype=float)
+    numbers = np.concatenate([   # rows in (cycle, walker) order, columns as the reader selects them
+        np.stack([np.repeat(cycle_t, n_walkers), np.tile(np.arange(n_walkers, dtype=float), n_cycles),
+                  condition_rt.T.ravel().astype(float), np.asarray(potential_rt, dtype=float).T.ravel(),
+                  np.asarray(volume_rt, dtype=float).T.ravel()], axis=1), solute_n2,
+        np.asarray(values_rtc, dtype=float).transpose(1, 0, 2).reshape(n_cycles * n_walkers, -1)], axis=1)
+    u_nk = np.ascontiguousarray(np.asarray(u_krt, dtype="<f8").transpose(2, 1, 0).reshape(-1, len(u_krt)))
+    swap_rows = np.array(list(swaps), dtype=float).reshape(-1, 5)
+    cycle_rows = np.stack([cycle_t, np.asarray(time_t, dtype=float),
+                           np.asarray(production_t, dtype=bool).astype(float)], axis=1)
+    checksum_t = (_row_checksums(cycle_rows, checksums.CYCLES)
+                  + _row_checksums(numbers, checksums.SAMPLES).reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
+                  + checksums.sum_by_cycle(_row_checksums(swap_rows, checksums.SWAPS),
+                                           swap_rows[:, 0].astype(np.int64) - first, n_cycles))
+    reduced_t = _row_checksums(np.column_stack([numbers[:, 1], u_nk]), checksums.REDUCED) \
+        .reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
+    width, blob = 8 * u_nk.shape[1], u_nk.tobytes()
+    samples = [(int(row[0]), int(row[1]), int(row[2]), *[x if x == x else None for x in row[3:]],
+                blob[n * width:(n + 1) * width]) for n, row in enumerate(numbers.tolist())]
+    stored = np.stack([checksum_t, reduced_t], axis=1).view(np.int64).tolist()    # checksums.as_stored
+    cycles = [(int(t), time, int(production), *sums)
+              for (t, time, production), sums in zip(cycle_rows.tolist(), stored)]
+    return cycles, samples, [tuple(row) for row in swap_rows.astype(np.int64).tolist()]

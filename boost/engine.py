@@ -9,7 +9,6 @@ scale is that of the condition it holds.
 """
 
 import time
-from contextlib import contextmanager
 from dataclasses import dataclass
 
 import numpy as np
@@ -232,16 +231,9 @@ class Walker:
         # before and out after everything done to the walker: walkers can then share a
         # process and each follows the trajectory it would follow alone.
         self._state = self.context.createCheckpoint() if shares_random_stream(platform.name, system) else None
+        self._own_stream = _OwnStream(self)      # with self._own_stream: ...
         self.condition = None
         self.apply(condition)
-
-    @contextmanager
-    def _own_stream(self):
-        if self._state is not None:
-            self.context.loadCheckpoint(self._state)
-        yield
-        if self._state is not None:
-            self._state = self.context.createCheckpoint()
 
     def apply(self, condition):
         """Move this walker to ``condition``: umbrella parameters, solute scale and temperature.
@@ -249,7 +241,7 @@ class Walker:
         On a temperature change velocities are rescaled by sqrt(T_new/T_old) so the walker
         carries on in equilibrium at the new temperature (common practice).
         """
-        with self._own_stream():
+        with self._own_stream:
             self._apply(condition)
 
     def _apply(self, condition):
@@ -270,18 +262,18 @@ class Walker:
 
     def minimise(self, *, tolerance=10.0, max_iterations=2000):
         """Local energy minimisation in the current condition (tolerance in kJ/mol/nm)."""
-        with self._own_stream():
+        with self._own_stream:
             openmm.LocalEnergyMinimizer.minimize(self.context, tolerance, max_iterations)
 
     def draw_velocities(self, seed):
-        with self._own_stream():
+        with self._own_stream:
             self.context.setVelocitiesToTemperature(self.condition.temperature * unit.kelvin, seed)
 
     def step(self, n_steps, conditions=()):
         """Move to each of ``conditions`` in turn (see apply), then take ``n_steps``: one visit
         to the walker's random stream for both."""
         try:
-            with self._own_stream():
+            with self._own_stream:
                 for condition in conditions:
                     self._apply(condition)
                 self.integrator.step(n_steps)
@@ -322,6 +314,26 @@ class Walker:
         self.condition = None
         self.apply(condition)
 
+
+
+class _OwnStream:
+    """A walker's place in a process-wide random stream, swapped in on entering and out on
+    leaving without an error (a context manager made once per walker: it is entered every
+    cycle, and a generator-based one costs several times more)."""
+
+    __slots__ = ("walker",)
+
+    def __init__(self, walker):
+        self.walker = walker
+
+    def __enter__(self):
+        if self.walker._state is not None:
+            self.walker.context.loadCheckpoint(self.walker._state)
+
+    def __exit__(self, kind, value, traceback):
+        if kind is None and self.walker._state is not None:
+            self.walker._state = self.walker.context.createCheckpoint()
+        return False
 
 
 def read_checkpoint_configurations(system, platform, blobs):

@@ -150,8 +150,11 @@ def _dot(a, b):
     return (a * b).sum(axis=1)
 
 
+_YZX, _ZXY = np.array([1, 2, 0]), np.array([2, 0, 1])     # made once: a list index is converted every call
+
+
 def _cross(a, b):
-    return a[:, [1, 2, 0]] * b[:, [2, 0, 1]] - a[:, [2, 0, 1]] * b[:, [1, 2, 0]]
+    return a[:, _YZX] * b[:, _ZXY] - a[:, _ZXY] * b[:, _YZX]
 
 
 def _centre(xyz, masses, group):

@@ -2,6 +2,8 @@
 written at once, and never behind a checkpoint."""
 
 import sqlite3
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -11,6 +13,9 @@ from boost.conditions import Condition
 from boost.protocol import load_protocol
 from boost.scheduler import run_protocol
 from boost.store import LEDGER, Ledger, read_ledger
+
+sys.path.insert(0, str(Path(__file__).parent))
+from conftest import double_well_protocol  # noqa: E402
 
 CONDITIONS = (Condition(0, 300.0), Condition(1, 330.0), Condition(2, 363.0))
 HEADER = {"coordinates": ["phi", "d"], "periodic": [True, False], "units": {"phi": "rad", "d": "nm"},
@@ -86,20 +91,10 @@ def test_recorded_cycles_wait_until_written_and_the_ledger_itself_sees_them(tmp_
     assert [row[0] for row in table_rows(tmp_path / "run")["cycles"]] == [0, 1, 2]
 
 
-TWO_TEMPERATURES = """\
-protocol: 1
-title: two temperatures on a double well
-system: double-well-high
-seed: 3
-temperature: 300 K
-timestep: 2 fs
-platform: Reference
-coordinates:
-  x: {position: 0, axis: x}
-temperatures: [300 K, 400 K]
-exchange: {pairs: adjacent}
-run: {cycle: 0.1 ps, production: 3 ps, checkpoint_every: 0.7 ps, frame_every: 0.5 ps}
-"""
+# Two temperatures of the test double well, 30 cycles, a checkpoint every 7.
+TWO_TEMPERATURES = double_well_protocol(
+    platform="Reference", temperatures="[300 K, 400 K]", exchange="{pairs: adjacent}", basins=None,
+    run={"equilibration": None, "production": "3 ps", "checkpoint_every": "0.7 ps", "frame_every": "0.5 ps"})
 
 
 def test_no_checkpoint_runs_ahead_of_the_ledger(tmp_path, monkeypatch):

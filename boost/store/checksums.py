@@ -9,6 +9,8 @@ about 2**-64. A cycle's checksum is the sum of its records' checksums; sums do n
 on the order the rows are read in, which lets the reader check cycles chunk by chunk.
 """
 
+from functools import lru_cache
+
 import numpy as np
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -40,20 +42,16 @@ def compute_row_checksums(rows, table):
     Returns ndarray of uint64, shape (n_rows,).
     """
     rows = np.atleast_2d(rows)
-    return mix_words(rows, column_salts(rows.shape[1], table)).sum(axis=1, dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        return _mix(_words(rows) ^ _column_salts(rows.shape[1], table)).sum(axis=1, dtype=np.uint64)
 
 
-def column_salts(n_columns, table):
-    """The salt each column's numbers are mixed with: uint64, shape (n_columns,)."""
+@lru_cache(maxsize=64)
+def _column_salts(n_columns, table):
+    """The salt each column's numbers are mixed with: uint64, shape (n_columns,); made once per
+    width and table (the ledger checksums every cycle's rows)."""
     columns = np.arange(n_columns, dtype=np.uint64)
     return _mix((columns + np.uint64(1 + 64 * table)) * _GOLDEN)
-
-
-def mix_words(numbers, salts):
-    """Each number's 64 bits mixed with its salt (arrays of one shape, or salts broadcast over
-    rows); a row's checksum is the sum of its mixed words."""
-    with np.errstate(over="ignore"):
-        return _mix(_words(numbers) ^ salts)
 
 
 def sum_by_cycle(checksums, cycle_of_row, n_cycles):

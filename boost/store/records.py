@@ -6,21 +6,9 @@ with a fixed number of numpy calls, whatever the number of cycles, and one Pytho
 per row built from plain floats (``tolist``), never from numpy scalars one by one.
 """
 
-from functools import lru_cache
-
 import numpy as np
 
 from . import checksums
-
-
-@lru_cache(maxsize=64)
-def _salts(n_columns, table):
-    return checksums.column_salts(n_columns, table)
-
-
-def _row_checksums(rows, table):
-    """checksums.compute_row_checksums, with the salts of each width made once."""
-    return checksums.mix_words(rows, _salts(rows.shape[1], table)).sum(axis=1, dtype=np.uint64)
 
 
 def rows_of_cycles(first, *, time_t, production_t, condition_rt, potential_rt, volume_rt, values_rtc, u_krt,
@@ -50,11 +38,11 @@ def rows_of_cycles(first, *, time_t, production_t, condition_rt, potential_rt, v
     swap_rows = np.array(list(swaps), dtype=float).reshape(-1, 5)
     cycle_rows = np.stack([cycle_t, np.asarray(time_t, dtype=float),
                            np.asarray(production_t, dtype=bool).astype(float)], axis=1)
-    checksum_t = (_row_checksums(cycle_rows, checksums.CYCLES)
-                  + _row_checksums(numbers, checksums.SAMPLES).reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
-                  + checksums.sum_by_cycle(_row_checksums(swap_rows, checksums.SWAPS),
+    checksum_t = (checksums.compute_row_checksums(cycle_rows, checksums.CYCLES)
+                  + checksums.compute_row_checksums(numbers, checksums.SAMPLES).reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
+                  + checksums.sum_by_cycle(checksums.compute_row_checksums(swap_rows, checksums.SWAPS),
                                            swap_rows[:, 0].astype(np.int64) - first, n_cycles))
-    reduced_t = _row_checksums(np.column_stack([numbers[:, 1], u_nk]), checksums.REDUCED) \
+    reduced_t = checksums.compute_row_checksums(np.column_stack([numbers[:, 1], u_nk]), checksums.REDUCED) \
         .reshape(n_cycles, n_walkers).sum(axis=1, dtype=np.uint64)
     width, blob = 8 * u_nk.shape[1], u_nk.tobytes()
     samples = [(int(row[0]), int(row[1]), int(row[2]), *[x if x == x else None for x in row[3:]],

@@ -122,6 +122,7 @@ class ConditionArrays:
         self.centre_ak = [np.array([c.centres[a] for c in conditions])[:, None] for a in range(len(self.periodic_a))]
         self.spring_ak = [np.array([c.springs[a] for c in conditions])[:, None] for a in range(len(self.periodic_a))]
         self.solute_factors_k2 = solute_factors([c.solute_scale for c in conditions])
+        self.scales_solute = bool(self.solute_factors_k2.any())    # else the shifts are all zero
         self.beta_k = np.array([beta(c.temperature) for c in conditions])
 
     def bias_energies(self, values_ra):
@@ -139,7 +140,7 @@ class ConditionArrays:
         """u_kr, as :func:`compute_reduced_potentials`."""
         potential_r = np.asarray(potential_r, dtype=float)
         energy_kr = potential_r[None, :] + self.bias_energies(values_ra)
-        if solute_r2 is not None:
+        if solute_r2 is not None and self.scales_solute:
             energy_kr = energy_kr + shifts_from_factors(self.solute_factors_k2, solute_r2)
         if pressure is not None:
             energy_kr = energy_kr + pressure * BAR_NM3 * np.asarray(volume_r, dtype=float)[None, :]

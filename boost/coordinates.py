@@ -119,8 +119,11 @@ class Coordinate:
 
 
 # ---------------------------------------------------------------------------- numpy
-# Small hand-written vector helpers: np.cross and np.linalg.norm cost tens of
-# microseconds on one frame, and these values are computed every cycle.
+# Every cycle each host computes its walkers' coordinates, so a set of coordinates is
+# prepared once (CoordinateSet) and then costs a few dozen numpy calls on all frames
+# whatever its size: one gather for every point, one vectorised pass per kind of leaf,
+# one product for combinations. Small hand-written vector helpers: np.cross and
+# np.linalg.norm cost tens of microseconds on small arrays.
 
 
 def _as_frames(xyz):
@@ -133,7 +136,8 @@ def _as_frames(xyz):
 
 
 def _as_boxes(box_vectors, n_frames):
-    """The box prepared for :func:`_displacement`: None, or ('diagonal' | 'rows', data)."""
+    """None, ('diagonal', lengths (n_frames, 1, 3)) or ('rows', [(k, row (n_frames, 1, 3),
+    length (n_frames, 1)) for c, b, a]): shaped to broadcast over (n_frames, n_leaves, 3)."""
     if box_vectors is None:
         return None
     boxes = np.asarray(box_vectors, dtype=float)
@@ -142,30 +146,23 @@ def _as_boxes(box_vectors, n_frames):
     elif boxes.shape != (n_frames, 3, 3):
         raise ValueError(f"box_vectors must be shape (3, 3) or ({n_frames}, 3, 3); got {boxes.shape}")
     if not (boxes[:, 1, 0].any() or boxes[:, 2, :2].any()):
-        return "diagonal", boxes.diagonal(axis1=1, axis2=2)
-    return "rows", [(k, boxes[:, k], boxes[:, k, k]) for k in (2, 1, 0)]
+        return "diagonal", boxes.diagonal(axis1=1, axis2=2)[:, np.newaxis]
+    return "rows", [(k, boxes[:, np.newaxis, k], boxes[:, k, k, np.newaxis]) for k in (2, 1, 0)]
 
 
 def _dot(a, b):
-    return (a * b).sum(axis=1)
+    return (a * b).sum(axis=-1)
 
 
 _YZX, _ZXY = np.array([1, 2, 0]), np.array([2, 0, 1])     # made once: a list index is converted every call
 
 
 def _cross(a, b):
-    return a[:, _YZX] * b[:, _ZXY] - a[:, _ZXY] * b[:, _YZX]
-
-
-def _centre(xyz, masses, group):
-    if len(group) == 1:
-        return xyz[:, group[0]]
-    weights = masses[list(group)]
-    return (weights[:, np.newaxis] * xyz[:, list(group)]).sum(axis=1) / weights.sum()
+    return a[..., _YZX] * b[..., _ZXY] - a[..., _ZXY] * b[..., _YZX]
 
 
 def _displacement(start, end, boxes):
-    """end - start, shape (n_frames, 3), reduced the way OpenMM reduces it."""
+    """end - start, shape (n_frames, n_leaves, 3), reduced the way OpenMM reduces it."""
     delta = end - start
     if boxes is None:
         return delta
@@ -173,19 +170,23 @@ def _displacement(start, end, boxes):
     if form == "diagonal":  # the three reductions are then independent
         return delta - np.floor(delta / data + 0.5) * data
     for k, row, length in data:  # c first, then b, then a
-        delta = delta - np.floor(delta[:, k] / length + 0.5)[:, np.newaxis] * row
+        delta = delta - np.floor(delta[..., k] / length + 0.5)[..., np.newaxis] * row
     return delta
 
 
-def _angle(points, boxes):
+def _distances(points, boxes):
+    delta = _displacement(points[0], points[1], boxes)
+    return np.sqrt(_dot(delta, delta))
+
+
+def _angles(points, boxes):
     first = _displacement(points[1], points[0], boxes)
     second = _displacement(points[1], points[2], boxes)
     normal = _cross(first, second)
-    sine = np.sqrt(_dot(normal, normal))
-    return np.arctan2(sine, _dot(first, second))
+    return np.arctan2(np.sqrt(_dot(normal, normal)), _dot(first, second))
 
 
-def _dihedral(points, boxes):
+def _dihedrals(points, boxes):
     b1 = _displacement(points[0], points[1], boxes)
     b2 = _displacement(points[1], points[2], boxes)
     b3 = _displacement(points[2], points[3], boxes)
@@ -196,25 +197,63 @@ def _dihedral(points, boxes):
     return values
 
 
-def _leaf_values(coordinate, xyz, masses, boxes):
-    points = [_centre(xyz, masses, group) for group in coordinate.groups]
-    if coordinate.kind == "position":
-        return points[0][:, coordinate.axis].copy()
-    if coordinate.kind == "distance":
-        delta = _displacement(points[0], points[1], boxes)
-        return np.sqrt(_dot(delta, delta))
-    if coordinate.kind == "angle":
-        return _angle(points, boxes)
-    return _dihedral(points, boxes)
+_LEAF_VALUES = {"distance": _distances, "angle": _angles, "dihedral": _dihedrals}
 
 
-def _values(coordinate, xyz, masses, boxes):
-    if coordinate.kind != "combination":
-        return _leaf_values(coordinate, xyz, masses, boxes)
-    total = np.zeros(xyz.shape[0])
-    for coefficient, term in coordinate.terms:
-        total += coefficient * _leaf_values(term, xyz, masses, boxes)
-    return total
+class CoordinateSet:
+    """Coordinates prepared for evaluation on frames, all at once.
+
+    Parameters
+    ----------
+    coordinates : sequence of Coordinate
+    masses : array_like, shape (n_atoms,), in amu (weights of the atom groups' centres)
+    """
+
+    def __init__(self, coordinates, masses):
+        self.coordinates = tuple(coordinates)
+        masses = np.asarray(masses, dtype=float)
+        leaves = [term for c in self.coordinates for term in ([c] if c.kind != "combination" else
+                                                               [t for _, t in c.terms])]
+        groups = [group for leaf in leaves for group in leaf.groups]
+        # a point is Σ weight·x over its group / its total weight; a one-atom group is its atom
+        self._atoms = np.array([i for group in groups for i in group], dtype=np.intp)
+        self._weights = np.array([1.0 if len(g) == 1 else masses[i] for g in groups for i in g])[:, np.newaxis]
+        self._starts = np.cumsum([0] + [len(g) for g in groups[:-1]], dtype=np.intp)
+        self._totals = np.array([1.0 if len(g) == 1 else masses[list(g)].sum() for g in groups])[:, np.newaxis]
+        first_point = np.cumsum([0] + [len(leaf.groups) for leaf in leaves[:-1]], dtype=np.intp)
+        self._kinds = []    # (leaf columns, value function or axis, point indices (n_points, n_leaves))
+        for kind in POINTS_PER_KIND:
+            columns = [n for n, leaf in enumerate(leaves) if leaf.kind == kind]
+            if columns:
+                points = first_point[columns] + np.arange(POINTS_PER_KIND[kind])[:, np.newaxis]
+                axes = np.array([leaves[n].axis for n in columns]) if kind == "position" else None
+                self._kinds.append((np.array(columns), _LEAF_VALUES.get(kind), points, axes))
+        self._n_leaves = len(leaves)
+        # coordinate = Σ coefficient · leaf: the identity column for a leaf coordinate
+        self._combine = np.zeros((len(leaves), len(self.coordinates)))
+        row = 0
+        for column, c in enumerate(self.coordinates):
+            for coefficient, _ in (c.terms if c.kind == "combination" else [(1.0, c)]):
+                self._combine[row, column] = coefficient
+                row += 1
+        self._plain = all(c.kind != "combination" for c in self.coordinates)
+
+    def values(self, xyz, box_vectors=None):
+        """Values on frames: ndarray (n_frames, n_coordinates), each column in its coordinate's
+        unit (arguments as :func:`compute_coordinate_values`)."""
+        xyz = _as_frames(xyz)
+        n_frames = xyz.shape[0]
+        if not self.coordinates:
+            return np.empty((n_frames, 0))
+        boxes = _as_boxes(box_vectors, n_frames)
+        centres = np.add.reduceat(xyz[:, self._atoms] * self._weights, self._starts, axis=1) / self._totals
+        leaves = np.empty((n_frames, self._n_leaves))
+        for columns, leaf_values, points, axes in self._kinds:
+            if leaf_values is None:      # positions: raw, never wrapped
+                leaves[:, columns] = centres[:, points[0], axes]
+            else:
+                leaves[:, columns] = leaf_values(np.moveaxis(centres[:, points], 1, 0), boxes)
+        return leaves if self._plain else leaves @ self._combine
 
 
 def compute_coordinate_values(coordinate, xyz, masses, box_vectors=None):
@@ -234,9 +273,7 @@ def compute_coordinate_values(coordinate, xyz, masses, box_vectors=None):
     ndarray, shape (n_frames,), in nm or rad (see ``coordinate.unit``)
         Dihedrals lie in (-π, π], angles in [0, π]; positions are raw, never wrapped.
     """
-    xyz = _as_frames(xyz)
-    boxes = _as_boxes(box_vectors, xyz.shape[0])
-    return _values(coordinate, xyz, np.asarray(masses, dtype=float), boxes)
+    return CoordinateSet([coordinate], masses).values(xyz, box_vectors)[:, 0]
 
 
 def compute_coordinate_values_many(coordinates, xyz, masses, box_vectors=None):
@@ -246,13 +283,7 @@ def compute_coordinate_values_many(coordinates, xyz, masses, box_vectors=None):
     -------
     ndarray, shape (n_frames, n_coordinates), each column in its coordinate's unit
     """
-    xyz = _as_frames(xyz)
-    boxes = _as_boxes(box_vectors, xyz.shape[0])
-    masses = np.asarray(masses, dtype=float)
-    values = np.empty((xyz.shape[0], len(coordinates)))
-    for column, coordinate in enumerate(coordinates):
-        values[:, column] = _values(coordinate, xyz, masses, boxes)
-    return values
+    return CoordinateSet(coordinates, masses).values(xyz, box_vectors)
 
 
 # --------------------------------------------------------------------------- OpenMM

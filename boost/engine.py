@@ -10,6 +10,7 @@ scale is that of the condition it holds.
 
 import time
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 import openmm
@@ -155,27 +156,36 @@ def shares_random_stream(platform_name, system):
     return platform_name == "Reference" or any(isinstance(f, BAROSTATS) for f in system.getForces())
 
 
-def vectors(state, kind, n_atoms):
+def read_state(context, types, groups=-1):
+    """``context.getState`` for ``types`` (a sum of openmm.State flags) and force groups
+    ``groups`` (a bit mask as a signed 32-bit int, -1 for all): the call it makes, without its
+    keyword handling (a few microseconds of every walker's every cycle)."""
+    return openmm._openmm.Context_getState(context, types, False, groups)
+
+
+def vectors(state, kind, n_atoms, out=None):
     """Positions (nm) or velocities (nm/ps) that ``state`` holds (``kind``: openmm.State.Positions
-    or .Velocities), as a plain float64 array, shape (n_atoms, 3).
+    or .Velocities), as a plain float64 array, shape (n_atoms, 3), written into ``out`` when
+    given (a C-contiguous float64 array of that shape).
 
     The very numbers State.getPositions(asNumpy=True) returns, without the unit wrapper around
     them (which value_in_unit then copies): a tenth of the cost, and for a walker of a few dozen
     atoms that wrapper cost more than its energy evaluation (bench/p1_overhead.py).
     """
-    array = np.empty((n_atoms, 3))
+    array = np.empty((n_atoms, 3)) if out is None else out
     state._getVectorAsNumpy(kind, array)
     return array
 
 
 def potential_energy(state):
-    """The potential energy ``state`` holds, in kJ/mol (OpenMM's unit for it), as a float."""
-    return state.getPotentialEnergy()._value
+    """The potential energy ``state`` holds, in kJ/mol (OpenMM's unit for it), as a float: the
+    number State.getPotentialEnergy wraps in a unit object."""
+    return openmm._openmm.State_getPotentialEnergy(state)
 
 
-@dataclass(frozen=True)
-class Observation:
-    """What a walker reports after propagating: energies without umbrellas."""
+class Observation(NamedTuple):
+    """What a walker reports after propagating: energies without umbrellas (a tuple: made for
+    every walker every cycle, and a frozen dataclass costs several times more to make)."""
 
     potential: float            # kJ/mol at λ = 1, flat-bottom restraints included, umbrellas excluded
     positions: np.ndarray       # (n_atoms, 3) nm
@@ -253,7 +263,8 @@ class Walker:
         old = self.condition
         # plain numbers in OpenMM's own units (nm/ps, K): the same values without unit objects
         if old is not None and old.temperature != condition.temperature:
-            velocities = vectors(self.context.getState(getVelocities=True), openmm.State.Velocities, self.n_atoms)
+            velocities = vectors(read_state(self.context, openmm.State.Velocities), openmm.State.Velocities,
+                                 self.n_atoms)
             self.context.setVelocities(velocities * np.sqrt(condition.temperature / old.temperature))
         self.integrator.setTemperature(condition.temperature)
         for name in self.barostat_temperatures:
@@ -281,13 +292,15 @@ class Walker:
             raise SimulationError(f"walker {self.index} (condition {self.condition.index}) failed in "
                                   f"OpenMM: {str(err).strip()}") from None
 
-    def observe(self):
+    def observe(self, positions=None):
+        """An Observation of the walker now; its positions are written into ``positions`` when
+        given (a float64 array of shape (n_atoms, 3), say a row of the host's report)."""
         # Without umbrellas every group is physical; asking for all of them spares OpenMM
         # a recomputation of the forces at the next step.
         groups = PHYSICAL_MASK if self.umbrella_names else -1
         solute = None
         if self.solute is None:
-            state = self.context.getState(getEnergy=True, getPositions=True, groups=groups)
+            state = read_state(self.context, openmm.State.Energy + openmm.State.Positions, groups)
             potential = potential_energy(state)
         else:
             # Three energies at other solute scales; the parameters come back bit for bit and
@@ -295,8 +308,8 @@ class Walker:
             # random stream are those it would have without them (tests/test_solute_run.py).
             parts = compute_solute_parts(self.solute, self.context, groups=PHYSICAL_GROUPS)
             potential, solute = float(parts.sum()), (float(parts[1]), float(parts[2]))
-            state = self.context.getState(getPositions=True)
-        positions = vectors(state, openmm.State.Positions, self.n_atoms)
+            state = read_state(self.context, openmm.State.Positions)
+        positions = vectors(state, openmm.State.Positions, self.n_atoms, positions)
         box = volume = None
         if self.uses_pbc:
             box = state.getPeriodicBoxVectors(asNumpy=True).value_in_unit(unit.nanometer)

@@ -11,6 +11,7 @@ Metropolis et al., J. Chem. Phys. 21, 1087 (1953), doi:10.1063/1.1699114). For t
 temperatures this is min{1, exp[(β_a - β_b)(U_r - U_s)]}.
 """
 
+import math
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -31,7 +32,7 @@ def compute_swap_log_ratio(u_kr, r, s, a, b):
 
 def accept_swap(log_ratio, rng):
     """Metropolis test: always accept downhill, uphill with probability exp(log_ratio)."""
-    return log_ratio >= 0 or rng.random() < np.exp(log_ratio)
+    return log_ratio >= 0 or rng.random() < math.exp(log_ratio)
 
 
 def neighbour_pairs(ladder_shape, cycle):
@@ -41,24 +42,33 @@ def neighbour_pairs(ladder_shape, cycle):
     neighbour pair is attempted regularly. Conditions are indexed in C order over
     ``ladder_shape`` (temperatures, then window axes).
     """
+    return list(_neighbour_pairs(ladder_shape, cycle)[0])
+
+
+def _neighbour_pairs(ladder_shape, cycle):
     axes = [a for a, size in enumerate(ladder_shape) if size > 1]
     if not axes:
-        return []
-    return list(_pairs_along(tuple(ladder_shape), axes[cycle % len(axes)], (cycle // len(axes)) % 2))
+        return (), np.empty(0, dtype=np.intp), np.empty(0, dtype=np.intp)
+    return _pairs_along(tuple(ladder_shape), axes[cycle % len(axes)], (cycle // len(axes)) % 2)
 
 
 @lru_cache(maxsize=64)
 def _pairs_along(ladder_shape, axis, parity):
-    """Neighbour pairs along ``axis`` whose lower member sits at an even (0) or odd (1) step;
-    made once for each (a run asks for the same few every cycle)."""
+    """Neighbour pairs along ``axis`` whose lower member sits at an even (0) or odd (1) step,
+    as tuples and as arrays of lower and upper members; made once for each (a run asks for
+    the same few every cycle)."""
     index = np.arange(int(np.prod(ladder_shape))).reshape(ladder_shape)
     lower = np.moveaxis(index, axis, 0)
-    return tuple((int(a), int(b)) for step in range(parity, ladder_shape[axis] - 1, 2)
-                 for a, b in zip(lower[step].ravel(), lower[step + 1].ravel()))
+    pairs = tuple((int(a), int(b)) for step in range(parity, ladder_shape[axis] - 1, 2)
+                  for a, b in zip(lower[step].ravel(), lower[step + 1].ravel()))
+    return pairs, np.array([a for a, _ in pairs], dtype=np.intp), np.array([b for _, b in pairs], dtype=np.intp)
 
 
 def swap_adjacent(u_kr, assignment, ladder_shape, cycle, rng, *, attempts=1):
     """Attempt swaps between walkers holding neighbouring conditions.
+
+    The pairs of one pass share no condition, so their log ratios are computed at once;
+    the Metropolis tests then run in pair order, drawing as :func:`accept_swap` does.
 
     Returns
     -------
@@ -66,12 +76,15 @@ def swap_adjacent(u_kr, assignment, ladder_shape, cycle, rng, *, attempts=1):
     tally : SwapTally
     """
     assignment = list(assignment)
-    holder = {k: r for r, k in enumerate(assignment)}
+    holder = np.empty(len(assignment), dtype=np.intp)
+    holder[assignment] = np.arange(len(assignment))
     counts = {}
     for attempt in range(attempts):
-        for a, b in neighbour_pairs(ladder_shape, cycle * attempts + attempt):
-            r, s = holder[a], holder[b]
-            accepted = accept_swap(compute_swap_log_ratio(u_kr, r, s, a, b), rng)
+        pairs, a_p, b_p = _neighbour_pairs(ladder_shape, cycle * attempts + attempt)
+        r_p, s_p = holder[a_p], holder[b_p]
+        log_ratios = compute_swap_log_ratio(u_kr, r_p, s_p, a_p, b_p).tolist()
+        for (a, b), r, s, log_ratio in zip(pairs, r_p.tolist(), s_p.tolist(), log_ratios):
+            accepted = log_ratio >= 0 or rng.random() < math.exp(log_ratio)
             if accepted:
                 assignment[r], assignment[s] = b, a
                 holder[a], holder[b] = s, r

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .coordinates import compute_coordinate_values_many
+from .coordinates import CoordinateSet
 from .cores import core_sets, pin, unpin, usable_cores
 from .engine import Walker
 from .exceptions import SimulationError
@@ -97,6 +97,8 @@ class WalkerHost:
                                   seed=setup.seeds[r], solute=setup.solute)
                         for r in indices}
         self.waiting = {}     # walker -> conditions it takes, in turn, before its next step (see assign)
+        self.n_atoms = system.getNumParticles()
+        self.coordinates = CoordinateSet(setup.coordinates, setup.masses)
 
     def minimise(self):
         self._settle()
@@ -114,23 +116,21 @@ class WalkerHost:
 
     def propagate(self, n_steps, with_positions):
         """Step every walker, then report them all at once: {walker indices: Reports}."""
-        observations = []
-        for r, walker in self.walkers.items():
-            walker.step(n_steps, self.waiting.pop(r, ()))
-            observations.append(walker.observe())
-        n = len(observations)
-        xyz = np.stack([o.positions for o in observations])
-        boxes = None if observations[0].box_vectors is None else np.stack([o.box_vectors for o in observations])
-        potential_r = np.array([o.potential for o in observations])
-        solute_r2 = np.array([o.solute or (0.0, 0.0) for o in observations]).reshape(n, 2)
-        finite_r = np.isfinite(potential_r) & np.isfinite(xyz).all(axis=(1, 2)) & np.isfinite(solute_r2).all(axis=1)
-        values_rc = np.full((n, len(self.setup.coordinates)), np.nan)
-        if self.setup.coordinates and finite_r.any():
-            values_rc[finite_r] = compute_coordinate_values_many(
-                self.setup.coordinates, xyz[finite_r], self.setup.masses, None if boxes is None else boxes[finite_r])
         walker_r = tuple(self.walkers)
-        return {walker_r: Reports(walker_r, potential_r, values_rc,
-                                  np.array([o.volume for o in observations], dtype=float), finite_r, solute_r2,
+        xyz = np.empty((len(walker_r), self.n_atoms, 3))     # each walker writes its own row
+        observations = []
+        for walker, positions in zip(self.walkers.values(), xyz):
+            walker.step(n_steps, self.waiting.pop(walker.index, ()))
+            observations.append(walker.observe(positions))
+        potential_r, volume_r = np.array([(o.potential, o.volume) for o in observations], dtype=float).T
+        solute_r2 = np.array([o.solute for o in observations]) if self.setup.solute is not None \
+            else np.zeros((len(walker_r), 2))
+        finite_r = np.isfinite(potential_r) & np.isfinite(xyz).all(axis=(1, 2)) & np.isfinite(solute_r2).all(axis=1)
+        boxes = None if observations[0].box_vectors is None else np.stack([o.box_vectors for o in observations])
+        with np.errstate(all="ignore"):      # a walker that blew up gets NaN values; the driver stops on it
+            values_rc = self.coordinates.values(xyz, boxes)
+        values_rc[~finite_r] = np.nan
+        return {walker_r: Reports(walker_r, potential_r, values_rc, volume_r, finite_r, solute_r2,
                                   tuple(xyz) if with_positions else None,
                                   tuple(o.box_vectors for o in observations) if with_positions else None)}
 

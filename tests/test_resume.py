@@ -195,9 +195,9 @@ def test_blow_up_retry_from_checkpoint_with_fresh_velocities(tmp_path, monkeypat
     real = engine.Walker.observe
     calls = {"n": 0}
 
-    def flaky(self):
+    def flaky(self, positions=None):
         calls["n"] += 1
-        observation = real(self)
+        observation = real(self, positions)
         if calls["n"] == 8:
             return engine.Observation(float("nan"), observation.positions, None, None)
         return observation

@@ -101,6 +101,31 @@ def test_atom_coordinates_match_mdtraj(box_name):
         assert np.max(angle_difference(ours, expected)) < 1e-4, kind
 
 
+@pytest.mark.parametrize("box_name", ["none", "triclinic"])
+def test_a_mixed_set_gives_each_column_its_own_coordinate(box_name):
+    # Kinds interleaved in one call (the set groups them by kind and must put every value
+    # back in its own column). source: mdtraj (library) compute_distances / compute_angles /
+    # compute_dihedrals as above; a position is the raw coordinate of its atom; a
+    # combination is its terms' mdtraj values combined.
+    xyz = molecule_frames(seed=31)
+    boxes = None if BOXES[box_name] is None else frame_boxes(BOXES[box_name])
+    traj = make_trajectory(xyz, boxes)
+    xyz = traj.xyz.astype(float)
+    distance, other = Coordinate("d", "distance", ((2,), (7,))), Coordinate("e", "distance", ((0,), (1,)))
+    coordinates = [Coordinate("t", "dihedral", ((9,), (8,), (7,), (6,))), distance,
+                   Coordinate("z", "position", ((4,),), axis=2), Coordinate("a", "angle", ((3,), (4,), (5,))),
+                   Coordinate("c", "combination", terms=((2.0, distance), (-0.5, other))),
+                   Coordinate("u", "dihedral", ((0,), (1,), (2,), (3,)))]
+    distances = md.compute_distances(traj, [(2, 7), (0, 1)], periodic=True)
+    expected = np.stack([md.compute_dihedrals(traj, [(9, 8, 7, 6)], periodic=True)[:, 0], distances[:, 0],
+                         xyz[:, 4, 2], md.compute_angles(traj, [(3, 4, 5)], periodic=True)[:, 0],
+                         2.0 * distances[:, 0] - 0.5 * distances[:, 1],
+                         md.compute_dihedrals(traj, [(0, 1, 2, 3)], periodic=True)[:, 0]], axis=1)
+    ours = compute_coordinate_values_many(coordinates, xyz, MASSES, boxes)
+    assert ours.shape == (N_FRAMES, len(coordinates))
+    assert np.max(angle_difference(ours, expected)) < 1e-4
+
+
 @pytest.mark.parametrize("box_name", ["orthorhombic", "triclinic"])
 def test_periodic_values_do_not_depend_on_images(box_name):
     xyz = molecule_frames(seed=21)

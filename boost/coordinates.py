@@ -221,7 +221,7 @@ class CoordinateSet:
         self._starts = np.cumsum([0] + [len(g) for g in groups[:-1]], dtype=np.intp)
         self._totals = np.array([1.0 if len(g) == 1 else masses[list(g)].sum() for g in groups])[:, np.newaxis]
         first_point = np.cumsum([0] + [len(leaf.groups) for leaf in leaves[:-1]], dtype=np.intp)
-        self._kinds = []    # (leaf columns, value function or axis, point indices (n_points, n_leaves))
+        self._kinds = []    # (leaf columns, value function (None: position), point indices (n_points, n_leaves), axes)
         for kind in POINTS_PER_KIND:
             columns = [n for n, leaf in enumerate(leaves) if leaf.kind == kind]
             if columns:

@@ -68,7 +68,7 @@ def swap_adjacent(u_kr, assignment, ladder_shape, cycle, rng, *, attempts=1):
     """Attempt swaps between walkers holding neighbouring conditions.
 
     The pairs of one pass share no condition, so their log ratios are computed at once;
-    the Metropolis tests then run in pair order, drawing as :func:`accept_swap` does.
+    the Metropolis tests (:func:`accept_swap`) then run in pair order.
 
     Returns
     -------
@@ -84,7 +84,7 @@ def swap_adjacent(u_kr, assignment, ladder_shape, cycle, rng, *, attempts=1):
         r_p, s_p = holder[a_p], holder[b_p]
         log_ratios = compute_swap_log_ratio(u_kr, r_p, s_p, a_p, b_p).tolist()
         for (a, b), r, s, log_ratio in zip(pairs, r_p.tolist(), s_p.tolist(), log_ratios):
-            accepted = log_ratio >= 0 or rng.random() < math.exp(log_ratio)
+            accepted = accept_swap(log_ratio, rng)
             if accepted:
                 assignment[r], assignment[s] = b, a
                 holder[a], holder[b] = s, r

@@ -9,6 +9,7 @@ and volumes come out; positions cross only when frames are due.
 
 import multiprocessing
 import os
+import sys
 from dataclasses import dataclass
 
 import numpy as np
@@ -255,15 +256,39 @@ def answer_commands(host, receive, reply):
             reply(("error", err))
 
 
-def _receive(connection):
+DIED = "a worker process died unexpectedly"
+
+
+def _receive(connection, died=DIED):
     try:
         return connection.recv()
     except EOFError:
-        return "error", SimulationError("a worker process died unexpectedly")
+        return "error", SimulationError(died)
+
+
+def died_while_starting():
+    """The error text for a worker that died before reporting its walkers built.
+
+    Worker processes run the main script again before anything of boost's (how Python's
+    multiprocessing starts them), so a script that calls boost without a main guard starts
+    a second run inside each worker, which fails there: name that likely cause.
+    """
+    main = sys.modules.get("__main__")
+    script = getattr(main, "__file__", None)
+    if script is None or getattr(getattr(main, "__spec__", None), "name", None) is not None:
+        return "a worker process died while starting"
+    return (f"a worker process died while starting; worker processes run the main script ({script}) "
+            "again first, so a script that calls boost needs the call under 'if __name__ == \"__main__\":'")
+
+
+#: A worker's first word, sent before it builds anything: a worker that dies before saying
+#: it died while Python started it, not in boost.
+STARTED = "started"
 
 
 def _serve_pipe(connection, setup, indices, cores):
     """Child process: build the walkers, then answer commands until told to stop."""
+    connection.send(STARTED)
     try:
         pin(cores)
         host = WalkerHost(setup, indices)
@@ -296,20 +321,22 @@ class ProcessWorkers(_Workers):
                 child.close()
                 self.connections.append(parent)
                 self.processes.append(process)
-            self._collect()
+            merge_replies(reply for reply in (_receive(c, died_while_starting()) for c in self.connections)
+                          if reply != STARTED)
+            self._collect("a worker process died while building its walkers")
         except BaseException:
             self.close()
             raise
 
-    def _collect(self):
-        return merge_replies(_receive(connection) for connection in self.connections)
+    def _collect(self, died=DIED):
+        return merge_replies(_receive(connection, died) for connection in self.connections)
 
     def call(self, command, *args):
         try:
             for connection in self.connections:
                 connection.send((command, args))
         except OSError:        # the pipe of a worker that died
-            raise SimulationError("a worker process died unexpectedly") from None
+            raise SimulationError(DIED) from None
         return self._collect()
 
     def close(self):

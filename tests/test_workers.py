@@ -178,3 +178,24 @@ def test_an_assigned_condition_is_taken_as_if_applied_at_once(tmp_path):
     at_once.walkers[1].apply(setup.conditions[1])
     assert waiting.checkpoints() == at_once.checkpoints()
     assert [w.condition.index for w in waiting.walkers.values()] == [0, 1, 3, 2]
+
+
+def test_a_script_without_a_main_guard_is_told_so(tmp_path):
+    # Python's multiprocessing runs the main script again in each worker it starts (its
+    # documented "safe importing of main module" rule); without the guard the script's run
+    # starts again there and the worker dies: the error has to say why, in one line.
+    (tmp_path / "p.yaml").write_text(LADDER.replace("PLATFORM", "Reference"))
+    script = tmp_path / "unguarded.py"
+    script.write_text("from boost.protocol import load_protocol\n"
+                      "from boost.scheduler import run_protocol\n"
+                      f"run_protocol(load_protocol({str(tmp_path / 'p.yaml')!r}), {str(tmp_path / 'run')!r}, "
+                      "progress=False, workers=2)\n")
+    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, timeout=300)
+    assert done.returncode != 0
+    last = done.stderr.strip().splitlines()[-1]
+    assert "died while starting" in last and "if __name__ == \"__main__\":" in last and str(script) in last
+    (tmp_path / "guarded.py").write_text(script.read_text().replace("run_protocol(load", "if __name__ == '__main__':\n"
+                                                                    "    run_protocol(load"))
+    done = subprocess.run([sys.executable, str(tmp_path / "guarded.py")], capture_output=True, text=True,
+                          timeout=300)
+    assert done.returncode == 0, done.stderr

@@ -26,6 +26,9 @@ Both are marked ``long`` (an hour or more on 2 cores, outside the CI budget); ru
 ``python -m pytest -m long``.
 """
 
+import os
+from pathlib import Path
+
 import numpy as np
 import pytest
 
@@ -90,13 +93,24 @@ run:
 """
 
 
-def run_and_compare(tmp_path, protocols, basins, largest_sigma):
+def runs_folder(tmp_path, check):
+    """Where a check's runs go: under $BOOST_LONG_RUNS/<check> when that is set, so the hours
+    of MD they take can be spread over several sittings (an interrupted run resumes, a
+    finished one is reused, one whose protocol here gained production is extended), else
+    a fresh temporary folder."""
+    kept = os.environ.get("BOOST_LONG_RUNS")
+    folder = Path(kept) / check if kept else tmp_path
+    folder.mkdir(parents=True, exist_ok=True)
+    return folder
+
+
+def run_and_compare(folder, protocols, basins, largest_sigma):
     """Run each protocol text, then compare their ΔG(first basin → second)."""
     results = {}
     for name, text in protocols.items():
-        path = tmp_path / f"{name}.yaml"
+        path = folder / f"{name}.yaml"
         path.write_text(text)
-        analysis = analyse_run(run_protocol(parse_protocol(text, path), tmp_path / name, progress=False))
+        analysis = analyse_run(run_protocol(parse_protocol(text, path), folder / name, progress=False))
         i, j = (analysis.basins.names.index(b) for b in basins)
         results[name] = (analysis.basins.Delta_g[i, j], analysis.basins.d_Delta_g[i, j],
                          analysis.verdicts.delta_g[(i, j)].word)
@@ -110,7 +124,7 @@ def run_and_compare(tmp_path, protocols, basins, largest_sigma):
 
 @pytest.mark.long
 def test_solute_tempering_and_umbrella_windows_give_one_psi_delta_g(tmp_path):
-    run_and_compare(tmp_path, {
+    run_and_compare(runs_folder(tmp_path, "psi"), {
         "solute": COMMON + PSI_BASINS + SOLUTE.format(highest="1000 K", count=4, equilibration="50 ps",
                                                       production="1600 ps"),
         "umbrella": COMMON + PSI_BASINS + UMBRELLA.format(axis="psi", equilibration="10 ps", production="160 ps"),
@@ -119,8 +133,8 @@ def test_solute_tempering_and_umbrella_windows_give_one_psi_delta_g(tmp_path):
 
 @pytest.mark.long
 def test_solute_tempering_and_umbrella_windows_give_one_phi_delta_g(tmp_path):
-    run_and_compare(tmp_path, {
-        "umbrella": COMMON + PHI_BASINS + UMBRELLA.format(axis="phi", equilibration="10 ps", production="60 ps"),
+    run_and_compare(runs_folder(tmp_path, "phi"), {
+        "umbrella": COMMON + PHI_BASINS + UMBRELLA.format(axis="phi", equilibration="10 ps", production="320 ps"),
         "solute": COMMON + PHI_BASINS + SOLUTE.format(highest="3000 K", count=8, equilibration="50 ps",
                                                       production="1000 ps"),
     }, ("negative", "positive"), largest_sigma=0.75)

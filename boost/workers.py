@@ -281,9 +281,9 @@ def died_while_starting():
             "again first, so a script that calls boost needs the call under 'if __name__ == \"__main__\":'")
 
 
-#: A worker's first word, sent before it builds anything: a worker that dies before saying
-#: it died while Python started it, not in boost.
-STARTED = "started"
+#: A worker's first reply, sent before it builds anything: a worker that dies before it
+#: died while Python started it, not in boost.
+STARTED = ("ok", {})
 
 
 def _serve_pipe(connection, setup, indices, cores):
@@ -321,8 +321,7 @@ class ProcessWorkers(_Workers):
                 child.close()
                 self.connections.append(parent)
                 self.processes.append(process)
-            merge_replies(reply for reply in (_receive(c, died_while_starting()) for c in self.connections)
-                          if reply != STARTED)
+            self._collect(died_while_starting())
             self._collect("a worker process died while building its walkers")
         except BaseException:
             self.close()

@@ -16,16 +16,27 @@ so a run too short to decide fails instead of passing on wide bars.
   40 ps per window, 29 min on 2 cores): G(extended) − G(helix) −0.72 ± 0.40 kcal/mol from
   solute tempering, −1.19 ± 0.59 from umbrella windows, in agreement, but both verdicts
   'too few samples' (walker correlation 58 and 12 cycles), so the test failed as it
-  should; the lengths were raised 4× and have not been run yet.
+  should. The lengths below give each run about 30 of those correlation times (the
+  bootstrap's 10 blocks of 3 each need that many); not run to the end yet.
 - (long) φ: the φ < 0 side against φ > 0, the issue's original target. With 4 solute
   rungs up to an effective 1000 K and 1 ns each (2026-12-04) no walker reached φ > 0 at
   λ = 1 and boost's verdict on ΔG was 'too few samples' (8.3 ± 0.6 kcal/mol from a
   handful of samples). With the 8 rungs up to 3000 K below, 1 ns each, and 60 ps per
   umbrella window (2026-12-04, 85 min on 2 cores): 2.78 ± 1.81 kcal/mol from solute
   tempering, 2.62 ± 0.30 from umbrella windows, in agreement, but both 'too few samples'
-  (walker correlation 52 and 10 cycles, so production spanned under 30 of them); the
-  lengths below were raised to about 30 correlation times and have not been run to the
-  end yet (about 3 more hours; see BOOST_LONG_RUNS below).
+  (walker correlation 52 and 10 cycles, so production spanned under 30 of them).
+  Extended (2026-12-04) to 2 ns per rung and 320 ps per window: 2.59 ± 0.55 kcal/mol from
+  solute tempering, 2.39 ± 0.18 from umbrella windows, again in agreement and again both
+  'too few samples'. Umbrella windows: the walker correlation grew to 17 cycles, so 320
+  cycles held only 19 of them; the production below is 640 ps. Solute tempering: its
+  walker correlation fell to 42 cycles (11 round trips per walker) and production was
+  long enough for the bootstrap's blocks, but the error bars are so much wider than
+  MBAR's asymptotic ones that the φ > 0 population rests on about 3 independent samples
+  and ΔG on about 1 (20 needed); the halves gave 0.6 % and 2.0 % of φ > 0. φ > 0 holds
+  1.3 % at λ = 1, so few walkers bring it down the ladder. If the independent samples
+  grow in proportion to production, 20 behind ΔG need about 16 times it: the production
+  below is 32 ns per rung, about 30 hours on 2 cores (3.4 s per 1 ps cycle of 8 walkers),
+  to be reached over many sittings.
 
 Both are marked ``long`` (hours on 2 cores, outside the CI budget); run them with
 ``python -m pytest -m long``. With BOOST_LONG_RUNS set to a folder the runs are kept there,
@@ -132,15 +143,15 @@ def run_and_compare(folder, protocols, basins, largest_sigma):
 def test_solute_tempering_and_umbrella_windows_give_one_psi_delta_g(tmp_path):
     run_and_compare(runs_folder(tmp_path, "psi"), {
         "solute": COMMON + PSI_BASINS + SOLUTE.format(highest="1000 K", count=4, equilibration="50 ps",
-                                                      production="1600 ps"),
-        "umbrella": COMMON + PSI_BASINS + UMBRELLA.format(axis="psi", equilibration="10 ps", production="160 ps"),
+                                                      production="2000 ps"),
+        "umbrella": COMMON + PSI_BASINS + UMBRELLA.format(axis="psi", equilibration="10 ps", production="480 ps"),
     }, ("helix", "extended"), largest_sigma=0.4)
 
 
 @pytest.mark.long
 def test_solute_tempering_and_umbrella_windows_give_one_phi_delta_g(tmp_path):
     run_and_compare(runs_folder(tmp_path, "phi"), {
-        "umbrella": COMMON + PHI_BASINS + UMBRELLA.format(axis="phi", equilibration="10 ps", production="320 ps"),
+        "umbrella": COMMON + PHI_BASINS + UMBRELLA.format(axis="phi", equilibration="10 ps", production="640 ps"),
         "solute": COMMON + PHI_BASINS + SOLUTE.format(highest="3000 K", count=8, equilibration="50 ps",
-                                                      production="2000 ps"),
+                                                      production="32000 ps"),
     }, ("negative", "positive"), largest_sigma=0.75)
